@@ -1,0 +1,155 @@
+"""The model bundle: one zip with manifest.json and weights.safetensors. Reading it never unpickles anything.
+
+Layout of the weights: graph.* (encoder, generator, critic, standardisation), frechet.* (reference statistics).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import os
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import torch
+from safetensors.torch import load as st_load
+from safetensors.torch import save as st_save
+
+from training import __version__
+from training.config import ModelConfig, from_dict
+from training.detector import Detector
+from training.errors import BadBundle, BadConfig
+from training.nets import build
+from training.scoring import ScoringGraph
+
+FORMAT = "knowngood-bundle"
+FORMAT_VERSION = 1
+_ZIP_TIME = (2020, 1, 1, 0, 0, 0)  # fixed entry times: same content -> same bytes
+MAX_BUNDLE_BYTES = 512 * 1024 * 1024
+
+
+def new_graph(cfg: ModelConfig) -> ScoringGraph:
+    return ScoringGraph(cfg, *build(cfg))
+
+
+def to_bytes(detector: Detector, frechet: dict[str, np.ndarray]) -> bytes:
+    """Serialises a detector; `frechet` holds the reference arrays (train_mu, train_sigma, holdout_features)."""
+    tensors = {f"graph.{k}": v.detach().contiguous() for k, v in detector.graph.state_dict().items()}
+    tensors.update({f"frechet.{k}": torch.as_tensor(np.ascontiguousarray(v)) for k, v in frechet.items()})
+    weights = st_save(tensors)
+    manifest = dict(detector.manifest)
+    manifest.update(format=FORMAT, format_version=FORMAT_VERSION, software_version=__version__)
+    manifest["model_id"] = hashlib.sha256(weights).hexdigest()[:16]
+    manifest["threshold"] = {**manifest.get("threshold", {}), "value": float(detector.threshold)}
+    manifest["weights"] = {k: list(v.shape) for k, v in sorted(tensors.items())}
+    buf = io.BytesIO()
+    with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
+        for name, data in (("manifest.json", json.dumps(manifest, indent=2, sort_keys=True).encode()),
+                           ("weights.safetensors", weights)):
+            zf.writestr(zipfile.ZipInfo(name, date_time=_ZIP_TIME), data, compress_type=zipfile.ZIP_DEFLATED)
+    return buf.getvalue()
+
+
+def save(detector: Detector, frechet: dict[str, np.ndarray], path: Path) -> str:
+    """Writes the bundle atomically (temp file + rename); returns its sha256."""
+    data = to_bytes(detector, frechet)
+    path = Path(path)
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_bytes(data)
+    os.replace(tmp, path)
+    return hashlib.sha256(data).hexdigest()
+
+
+def load(path: Path) -> tuple[Detector, dict[str, np.ndarray]]:
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise BadBundle(f"{path}: cannot read ({exc.strerror})") from None
+    return from_bytes(data, name=str(path))
+
+
+def from_bytes(data: bytes, *, name: str = "bundle") -> tuple[Detector, dict[str, np.ndarray]]:
+    """Validates everything (zip, manifest, format version, shapes, a test forward pass) before returning."""
+    if len(data) > MAX_BUNDLE_BYTES:
+        raise BadBundle(f"{name}: {len(data)} bytes is over the {MAX_BUNDLE_BYTES}-byte limit")
+    manifest, weights = _read_zip(data, name)
+    _check_manifest(manifest, name)
+    try:
+        cfg = from_dict(ModelConfig, manifest["model"])
+    except (BadConfig, TypeError) as exc:
+        raise BadBundle(f"{name}: model settings are invalid ({exc})") from None
+    try:
+        tensors = st_load(weights)
+    except Exception as exc:
+        raise BadBundle(f"{name}: weights.safetensors is corrupt ({exc})") from None
+    graph = new_graph(cfg)
+    _load_graph(graph, tensors, name)
+    frechet = {k.split(".", 1)[1]: v.numpy() for k, v in tensors.items() if k.startswith("frechet.")}
+    threshold = float(manifest["threshold"]["value"])
+    det = Detector(cfg=cfg, graph=graph, threshold=threshold, manifest=manifest,
+                   sha256=hashlib.sha256(data).hexdigest())
+    _test_forward(det, name)
+    return det, frechet
+
+
+def _read_zip(data: bytes, name: str) -> tuple[dict, bytes]:
+    try:
+        with zipfile.ZipFile(io.BytesIO(data)) as zf:
+            names = set(zf.namelist())
+            missing = {"manifest.json", "weights.safetensors"} - names
+            if missing:
+                raise BadBundle(f"{name}: not a knowngood bundle (missing {', '.join(sorted(missing))})")
+            manifest = json.loads(zf.read("manifest.json"))
+            weights = zf.read("weights.safetensors")
+    except BadBundle:
+        raise
+    except (zipfile.BadZipFile, EOFError, OSError, zipfile.LargeZipFile) as exc:
+        raise BadBundle(f"{name}: not a readable bundle, truncated or corrupt ({exc})") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise BadBundle(f"{name}: manifest.json is not valid JSON ({exc})") from None
+    if not isinstance(manifest, dict):
+        raise BadBundle(f"{name}: manifest.json must hold an object")
+    return manifest, weights
+
+
+def _check_manifest(manifest: dict, name: str) -> None:
+    if manifest.get("format") != FORMAT:
+        raise BadBundle(f"{name}: not a knowngood bundle (format {manifest.get('format')!r})")
+    version = manifest.get("format_version")
+    if not isinstance(version, int):
+        raise BadBundle(f"{name}: format_version missing or not an integer")
+    if version > FORMAT_VERSION:
+        raise BadBundle(
+            f"{name}: bundle format {version} is newer than this software reads ({FORMAT_VERSION}); "
+            f"upgrade knowngood (this is {__version__}; the bundle was written by "
+            f"{manifest.get('software_version', 'an unknown version')})"
+        )
+    for key in ("model", "threshold", "weights"):
+        if not isinstance(manifest.get(key), dict):
+            raise BadBundle(f"{name}: manifest has no {key!r} section")
+    if not isinstance(manifest["threshold"].get("value"), (int, float)):
+        raise BadBundle(f"{name}: manifest threshold has no numeric value")
+
+
+def _load_graph(graph: ScoringGraph, tensors: dict[str, torch.Tensor], name: str) -> None:
+    state = {k.split(".", 1)[1]: v for k, v in tensors.items() if k.startswith("graph.")}
+    expected = graph.state_dict()
+    missing = sorted(set(expected) - set(state))
+    extra = sorted(set(state) - set(expected))
+    if missing or extra:
+        raise BadBundle(f"{name}: weights do not match the model settings (missing {missing[:3]}, extra {extra[:3]})")
+    for key, value in expected.items():
+        if tuple(state[key].shape) != tuple(value.shape):
+            raise BadBundle(f"{name}: weight {key} has shape {tuple(state[key].shape)}, expected {tuple(value.shape)}")
+    graph.load_state_dict(state, strict=True)
+    graph.eval()
+
+
+def _test_forward(det: Detector, name: str) -> None:
+    x = torch.full((1, det.cfg.channels, det.cfg.size, det.cfg.size), 0.5)
+    scores, _ = det.score_batch(x)
+    if not np.isfinite(scores).all():
+        raise BadBundle(f"{name}: the model gives non-finite scores")

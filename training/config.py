@@ -1,0 +1,71 @@
+"""Every model and training setting, with its default, in one visible place."""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass, fields
+
+from training.errors import BadConfig
+
+
+@dataclass(frozen=True)
+class ModelConfig:
+    """Sizes of the networks and the score definition; stored in the bundle and enough to rebuild the model."""
+
+    size: int = 128  # working resolution (square) the images are resized to
+    channels: int = 1  # 1 = grayscale, 3 = RGB; taken from the training set
+    width: int = 16  # channels of the first conv block; doubles per block (8x in the critic)
+    z_channels: int = 8  # latent channels; the latent is spatial, size / 8 on a side
+    feature_layer: int = 2  # critic block whose output is f(x) for the feature residual
+    kappa: float = 1.0  # weight of the critic-feature residual in the anomaly map
+    smooth_sigma: float = 2.0  # Gaussian smoothing of the anomaly map, in working-resolution pixels
+    top_fraction: float = 0.01  # image score = mean of the top fraction of the standardised map
+
+    def __post_init__(self) -> None:
+        if self.size % 16 or self.size < 32:
+            raise BadConfig(f"size must be a multiple of 16 and at least 32, got {self.size}")
+        if self.channels not in (1, 3):
+            raise BadConfig(f"channels must be 1 or 3, got {self.channels}")
+        if not 0 < self.top_fraction <= 1:
+            raise BadConfig(f"top_fraction must be in (0, 1], got {self.top_fraction}")
+
+    @property
+    def latent_side(self) -> int:
+        return self.size // 8
+
+
+@dataclass(frozen=True)
+class TrainConfig:
+    """How the networks are fitted. `steps` fixes the work (reproducible); `minutes` caps the wall time."""
+
+    steps: int = 3000
+    minutes: float = 10.0
+    batch: int = 32
+    lr: float = 2e-4
+    betas: tuple[float, float] = (0.5, 0.9)
+    critic_steps: int = 2  # critic updates per generator/encoder update
+    gp_lambda: float = 10.0  # WGAN-GP gradient penalty weight (Gulrajani et al. 2017)
+    recon_weight: float = 10.0  # weight of the izi_f reconstruction loss against the adversarial loss
+    holdout_share: float = 0.25  # known-good images kept out of fitting for standardisation and threshold
+    target_false_reject: float = 0.01  # conformal threshold target at train time
+    eval_every: int = 250  # steps between Fréchet-distance evaluations / checkpoint choice
+    checkpoint_every: int = 250  # steps between resumable checkpoints
+    augment: bool = True  # small shifts, rotations and brightness changes (process variation, not defects)
+    seed: int = 0
+    threads: int = 0  # 0 = torch default
+
+
+def from_dict(cls, values: dict):
+    """Builds a config dataclass, refusing unknown keys so a typo is an error, not a silent default."""
+    names = {f.name for f in fields(cls)}
+    unknown = sorted(set(values) - names)
+    if unknown:
+        raise BadConfig(f"unknown {cls.__name__} keys: {', '.join(unknown)}")
+    kwargs = dict(values)
+    if "betas" in kwargs:
+        kwargs["betas"] = tuple(kwargs["betas"])
+    return cls(**kwargs)
+
+
+def to_dict(cfg) -> dict:
+    return dataclasses.asdict(cfg)

@@ -1,0 +1,70 @@
+"""A trained model ready to score: the scoring graph plus its threshold and manifest. Built by `bundle.load`."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import torch
+
+from training.config import ModelConfig
+from training.data import to_model_input
+from training.scoring import ScoringGraph, resize_maps
+
+
+@dataclass(frozen=True)
+class Inspection:
+    """One image's result. score: higher = less like known-good; verdict 'flag' when score > threshold."""
+
+    score: float
+    threshold: float
+    verdict: str
+    heatmap: np.ndarray  # (H, W) float32 at the input image's own resolution, same unit as the score
+
+
+@dataclass
+class Detector:
+    cfg: ModelConfig
+    graph: ScoringGraph
+    threshold: float
+    manifest: dict = field(default_factory=dict)
+    sha256: str = ""  # of the bundle file this was loaded from
+
+    @property
+    def model_id(self) -> str:
+        return self.manifest.get("model_id", "unsaved")
+
+    def prepare(self, images: list[np.ndarray]) -> torch.Tensor:
+        """(C, H, W) float arrays at any size -> one (B, C, S, S) batch in the model's colour mode."""
+        return to_model_input(images, size=self.cfg.size, channels=self.cfg.channels)
+
+    @torch.inference_mode()
+    def score_batch(self, x: torch.Tensor, batch: int = 32) -> tuple[np.ndarray, torch.Tensor]:
+        """x (N, C, S, S) -> anomaly scores (N,) float64 (higher = less like known-good) and heatmaps (N, S, S)."""
+        self.graph.eval()
+        scores, heats = [], []
+        for i in range(0, len(x), batch):
+            s, h = self.graph(x[i : i + batch])
+            scores.append(s)
+            heats.append(h)
+        return torch.cat(scores).double().numpy(), torch.cat(heats)
+
+    def inspect(self, images: list[np.ndarray], batch: int = 32) -> list[Inspection]:
+        """Scores native-resolution images as one batch; heatmaps come back at each image's own size."""
+        if not images:
+            return []
+        scores, heats = self.score_batch(self.prepare(images), batch=batch)
+        maps = resize_maps(heats, [im.shape[-2:] for im in images])
+        t = self.threshold
+        return [
+            Inspection(score=float(s), threshold=t, verdict="flag" if s > t else "pass", heatmap=m)
+            for s, m in zip(scores, maps)
+        ]
+
+    @torch.inference_mode()
+    def embed(self, images: list[np.ndarray] | torch.Tensor, batch: int = 64) -> np.ndarray:
+        """(N, F) pooled critic features: the space Fréchet distances (drift) are measured in."""
+        x = images if isinstance(images, torch.Tensor) else self.prepare(images)
+        self.graph.eval()
+        parts = [self.graph.critic.pooled_features(x[i : i + batch]) for i in range(0, len(x), batch)]
+        return torch.cat(parts).double().numpy()
