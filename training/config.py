@@ -40,6 +40,9 @@ class TrainConfig:
 
     steps: int = 3000
     minutes: float = 10.0
+    recipe: str = "joint"  # "joint" (adversarial auto-encoder) or "two_stage" (f-AnoGAN: GAN, then encoder)
+    gan_share: float = 0.6  # two_stage only: share of the steps spent on the GAN before the encoder
+    patch: int = 64  # training crop side in px (0 = whole image); the nets are fully convolutional
     batch: int = 32
     lr: float = 2e-4
     betas: tuple[float, float] = (0.5, 0.9)
@@ -53,6 +56,16 @@ class TrainConfig:
     augment: bool = True  # small shifts, rotations and brightness changes (process variation, not defects)
     seed: int = 0
     threads: int = 0  # 0 = torch default
+
+    def __post_init__(self) -> None:
+        if self.recipe not in ("joint", "two_stage"):
+            raise BadConfig(f"recipe must be 'joint' or 'two_stage', got {self.recipe!r}")
+        if self.patch and (self.patch % 16 or self.patch < 32):
+            raise BadConfig(f"patch must be 0 or a multiple of 16 of at least 32, got {self.patch}")
+        if not 0 < self.holdout_share < 1:
+            raise BadConfig(f"holdout_share must be in (0, 1), got {self.holdout_share}")
+        if self.steps < 1 or self.batch < 1:
+            raise BadConfig("steps and batch must be at least 1")
 
 
 def from_dict(cls, values: dict):

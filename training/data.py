@@ -41,7 +41,7 @@ def decode_image(data: bytes, *, name: str, max_pixels: int = MAX_PIXELS, min_si
     except (ImageTooLarge, BadImage):
         raise
     except (Image.DecompressionBombError, Image.DecompressionBombWarning) as exc:
-        raise ImageTooLarge(f"{name}: too many pixels ({exc})") from None
+        raise ImageTooLarge(f"{name}: too many pixels, over the limit of {max_pixels} ({exc})") from None
     except Exception as exc:  # PIL raises many types for broken files; all mean the same to a user
         return _decode_fallback(data, name=name, reason=exc)
     return _to_array(img, name=name)

@@ -1,0 +1,74 @@
+"""The bundle: round trip, and a clear refusal of anything corrupt, truncated, newer or pickled."""
+
+import io
+import json
+import pickle
+import zipfile
+
+import numpy as np
+import pytest
+
+from training import bundle
+from training.errors import BadBundle
+
+
+def _rezip(src: bytes, manifest_edit=None, weights: bytes | None = None) -> bytes:
+    with zipfile.ZipFile(io.BytesIO(src)) as zf:
+        manifest = json.loads(zf.read("manifest.json"))
+        w = zf.read("weights.safetensors")
+    if manifest_edit:
+        manifest_edit(manifest)
+    out = io.BytesIO()
+    with zipfile.ZipFile(out, "w") as zf:
+        zf.writestr("manifest.json", json.dumps(manifest))
+        zf.writestr("weights.safetensors", w if weights is None else weights)
+    return out.getvalue()
+
+
+def test_round_trip_keeps_scores(tiny_bundle, tiny_good_images):
+    det, frechet = bundle.load(tiny_bundle)
+    again, _ = bundle.from_bytes(bundle.to_bytes(det, frechet))
+    a = [r.score for r in det.inspect(tiny_good_images[:4])]
+    b = [r.score for r in again.inspect(tiny_good_images[:4])]
+    assert a == b and again.model_id == det.model_id and set(frechet) >= {"train_mu", "train_sigma"}
+
+
+def test_same_content_gives_same_bytes(tiny_bundle):
+    det, frechet = bundle.load(tiny_bundle)
+    assert bundle.to_bytes(det, frechet) == bundle.to_bytes(det, frechet)
+
+
+def test_truncated_and_garbage_are_refused(tiny_bundle):
+    data = tiny_bundle.read_bytes()
+    for bad in (data[: len(data) // 2], b"", b"PK\x03\x04 nonsense"):
+        with pytest.raises(BadBundle, match="truncated or corrupt|not a readable"):
+            bundle.from_bytes(bad, name="m.kgm")
+
+
+def test_newer_format_names_both_versions(tiny_bundle):
+    newer = _rezip(tiny_bundle.read_bytes(), lambda m: m.update(format_version=99))
+    with pytest.raises(BadBundle, match="format 99 is newer"):
+        bundle.from_bytes(newer)
+
+
+def test_wrong_shapes_and_unknown_settings_are_refused(tiny_bundle):
+    data = tiny_bundle.read_bytes()
+    with pytest.raises(BadBundle, match="weights do not match|has shape"):
+        bundle.from_bytes(_rezip(data, lambda m: m["model"].update(width=16)))
+    with pytest.raises(BadBundle, match="unknown ModelConfig keys: colour"):
+        bundle.from_bytes(_rezip(data, lambda m: m["model"].update(colour=1)))
+
+
+def test_pickled_weights_are_never_unpickled(tiny_bundle):
+    class Boom:
+        def __reduce__(self):
+            return (exec, ("raise SystemExit('unpickled!')",))
+
+    with pytest.raises(BadBundle, match="corrupt"):
+        bundle.from_bytes(_rezip(tiny_bundle.read_bytes(), weights=pickle.dumps(Boom())))
+
+
+def test_frechet_arrays_survive(tiny_bundle):
+    _, frechet = bundle.load(tiny_bundle)
+    assert frechet["train_sigma"].shape == (frechet["train_mu"].shape[0],) * 2
+    assert np.isfinite(frechet["holdout_features"]).all()

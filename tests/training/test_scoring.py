@@ -1,0 +1,60 @@
+"""Score contracts: direction, units, shapes, and the definition written in the bundle."""
+
+import dataclasses
+
+import numpy as np
+import pytest
+import torch
+
+from training import bundle
+
+
+def test_score_is_top_fraction_mean_of_the_standardised_heatmap(tiny_bundle, tiny_good_images):
+    # our own invariant, in the spirit of scikit-learn's score_samples == decision_function + offset_ test
+    det, _ = bundle.load(tiny_bundle)
+    x = det.prepare(tiny_good_images[:5])
+    with torch.inference_mode():
+        score, heat = det.graph(x)
+        z = (det.graph.term_maps(x) - det.graph.term_mean) / det.graph.term_std
+    kappa = det.cfg.kappa
+    expected_heat = ((z[:, 0] + kappa * z[:, 1]) / (1 + kappa)).clamp(min=0)
+    assert torch.allclose(heat, expected_heat)
+    k = det.graph.top_k
+    assert torch.allclose(score, torch.sort(heat.flatten(1), dim=1, descending=True).values[:, :k].mean(1))
+    assert (score >= 0).all() and (heat >= 0).all()  # never negative
+
+
+def test_flag_exactly_when_score_above_threshold(tiny_bundle, tiny_good_images):
+    det, _ = bundle.load(tiny_bundle)
+    scores = [r.score for r in det.inspect(tiny_good_images)]
+    mid = float(np.median(scores))
+    at_median = dataclasses.replace(det, threshold=mid)
+    for r in at_median.inspect(tiny_good_images):
+        assert (r.verdict == "flag") == (r.score > mid)
+    exact = dataclasses.replace(det, threshold=scores[0])
+    assert exact.inspect(tiny_good_images[:1])[0].verdict == "pass"  # equal is not above
+
+
+def test_heatmap_comes_back_at_each_input_resolution(tiny_bundle):
+    det, _ = bundle.load(tiny_bundle)
+    images = [np.random.rand(1, 48, 80).astype(np.float32), np.random.rand(3, 200, 100).astype(np.float32)]
+    results = det.inspect(images)
+    assert [r.heatmap.shape for r in results] == [(48, 80), (200, 100)]
+    assert all(r.heatmap.dtype == np.float32 for r in results)
+
+
+def test_held_out_good_images_standardise_to_zero_mean(tiny_bundle, tiny_good_images):
+    det, _ = bundle.load(tiny_bundle)
+    x = det.prepare(tiny_good_images)
+    with torch.inference_mode():
+        z = (det.graph.term_maps(x) - det.graph.term_mean) / det.graph.term_std
+    # the fixture standardised on these very images: per-pixel mean 0 by construction, std shrunk but ~1
+    assert float(z.mean()) == pytest.approx(0, abs=1e-4)
+    assert 0.5 < float(z.std()) < 1.5
+
+
+def test_batch_scoring_equals_one_by_one(tiny_bundle, tiny_good_images):
+    det, _ = bundle.load(tiny_bundle)
+    together = [r.score for r in det.inspect(tiny_good_images[:6])]
+    alone = [det.inspect([im])[0].score for im in tiny_good_images[:6]]
+    assert together == pytest.approx(alone, rel=1e-5, abs=1e-6)

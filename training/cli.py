@@ -1,0 +1,127 @@
+"""The `knowngood` command: train, tune, inspect, demo (and `serve`, registered by the service package).
+
+Exit codes: 0 done; 1 flagged parts found (inspect --fail-on-flag only); 2 bad usage or bad input.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from importlib.metadata import entry_points
+from pathlib import Path
+
+from training.errors import KnowngoodError
+
+
+def _add_train(sub) -> None:
+    p = sub.add_parser("train", help="train on a folder of known-good images")
+    p.add_argument("good_dir", type=Path, metavar="GOOD_DIR")
+    p.add_argument("-o", "--output", type=Path, required=True, metavar="MODEL", help="bundle file to write")
+    p.add_argument("--minutes", type=float, default=None, help="wall-time cap (default 10 without --steps)")
+    p.add_argument("--steps", type=int, default=None, help="fix the work: same seed, data, steps = same bundle")
+    p.add_argument("--size", type=int, default=128, help="working resolution in px (multiple of 16)")
+    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--recipe", choices=("joint", "two_stage"), default="joint")
+    p.add_argument("--target-false-reject", type=float, default=0.01, help="conformal threshold target")
+    p.add_argument("--skip-bad", action="store_true", help="skip unreadable images and report them")
+    p.add_argument("--fresh", action="store_true", help="ignore a checkpoint left by an interrupted run")
+    p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.set_defaults(func=cmd_train)
+
+
+def _add_tune(sub) -> None:
+    p = sub.add_parser("tune", help="set the threshold from a labelled holdout and write the report")
+    p.add_argument("model", type=Path, metavar="MODEL")
+    p.add_argument("--good", type=Path, required=True, metavar="DIR")
+    p.add_argument("--defective", type=Path, required=True, metavar="DIR")
+    p.add_argument("--masks", type=Path, default=None, metavar="DIR")
+    target = p.add_mutually_exclusive_group()
+    target.add_argument("--target-false-reject", type=float, default=None, metavar="A")
+    target.add_argument("--target-catch", type=float, default=None, metavar="C")
+    p.add_argument("--report", type=Path, default=None, metavar="DIR")
+    p.add_argument("-o", "--output", type=Path, default=None, help="write the tuned bundle here (default: MODEL)")
+    p.add_argument("--skip-bad", action="store_true")
+    p.set_defaults(func=cmd_tune)
+
+
+def _add_inspect(sub) -> None:
+    p = sub.add_parser("inspect", help="score images or folders")
+    p.add_argument("model", type=Path, metavar="MODEL")
+    p.add_argument("paths", type=Path, nargs="+", metavar="PATH")
+    p.add_argument("--json", action="store_true", help="one JSON object a line: image, score, threshold, verdict")
+    p.add_argument("--heatmaps", type=Path, default=None, metavar="DIR", help="write <stem>.png and <stem>.npy")
+    p.add_argument("--fail-on-flag", action="store_true", help="exit 1 when any part is flagged")
+    p.add_argument("--skip-bad", action="store_true", help="report unreadable images instead of stopping")
+    p.add_argument("--batch", type=int, default=32)
+    p.set_defaults(func=cmd_inspect)
+
+
+def _add_demo(sub) -> None:
+    p = sub.add_parser("demo", help="render the demo parts, train, tune, inspect and write the reports")
+    p.add_argument("--out", type=Path, default=Path("demo_out"))
+    p.add_argument("--steps", type=int, default=None, help="training steps per part kind")
+    p.add_argument("--minutes", type=float, default=None, help="training time cap per part kind")
+    p.add_argument("--seed", type=int, default=0)
+    p.set_defaults(func=cmd_demo)
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(prog="knowngood", description="Visual inspection from known-good images.")
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for add in (_add_train, _add_tune, _add_inspect, _add_demo):
+        add(sub)
+    for ep in entry_points(group="knowngood.commands"):
+        try:
+            ep.load()(sub)
+        except ImportError:  # the service's extras are not installed: its commands are simply absent
+            continue
+    return parser
+
+
+def cmd_train(args) -> int:
+    from training.commands import train
+
+    return train(args)
+
+
+def cmd_tune(args) -> int:
+    from training.commands import tune
+
+    return tune(args)
+
+
+def cmd_inspect(args) -> int:
+    from training.commands import inspect
+
+    return inspect(args)
+
+
+def cmd_demo(args) -> int:
+    from training.demo import run_demo
+
+    run_demo(args.out, steps=args.steps, minutes=args.minutes, seed=args.seed)
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = build_parser().parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except KnowngoodError as exc:
+        print(f"knowngood: error: {exc}", file=sys.stderr)
+        return exc.exit_code
+    except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
+        print(f"knowngood: error: {exc.filename}: {exc.strerror}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("knowngood: interrupted (a training checkpoint, if any, lets the run resume)", file=sys.stderr)
+        return 130
+
+
+def print_json(obj) -> None:
+    print(json.dumps(obj, separators=(",", ":")))
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,140 @@
+"""What each CLI command does, with arguments already parsed. Heavy imports live here, not in cli.py."""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from training import bundle
+from training.config import ModelConfig, TrainConfig
+from training.data import list_images, load_folder, read_image
+from training.errors import BadConfig, BadDataset, BadImage
+from training.heatmap import heatmap_png_bytes
+from training.holdout import load_holdout
+from training.report import metrics_summary, write_report
+from training.train import train_bundle
+from training.tuning import threshold_for_catch, threshold_for_false_reject
+
+
+def _rate(name: str, value: float | None) -> None:
+    if value is not None and not 0 < value < 1:
+        raise BadConfig(f"{name} must be between 0 and 1 (exclusive), got {value}")
+
+
+def train(args) -> int:
+    _rate("--target-false-reject", args.target_false_reject)
+    good = load_folder(args.good_dir, skip_bad=args.skip_bad)
+    for path, why in good.skipped:
+        print(f"knowngood: skipped {path}: {why}", file=sys.stderr)
+    steps = args.steps if args.steps is not None else 10**9
+    minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
+    model = ModelConfig(size=args.size, channels=good.channels)
+    tcfg = TrainConfig(steps=steps, minutes=minutes or 0.0, seed=args.seed, recipe=args.recipe,
+                       target_false_reject=args.target_false_reject)
+    det = train_bundle(good, args.output, model=model, train=tcfg, progress=not args.quiet, resume=not args.fresh)
+    t = det.manifest["training"]
+    print(f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
+          f"threshold {det.threshold:.3f} by {det.manifest['threshold']['method']})")
+    return 0
+
+
+def tune(args) -> int:
+    _rate("--target-false-reject", args.target_false_reject)
+    _rate("--target-catch", args.target_catch)
+    summary = tune_model(args.model, args.good, args.defective, args.masks, target_catch=args.target_catch,
+                         target_false_reject=args.target_false_reject, report=args.report, output=args.output,
+                         skip_bad=args.skip_bad)
+    print(json.dumps(summary, indent=2, default=float))
+    return 0
+
+
+def tune_model(model: Path, good: Path, defective: Path, masks: Path | None, *, target_catch: float | None = None,
+               target_false_reject: float | None = None, report: Path | None = None, output: Path | None = None,
+               skip_bad: bool = False) -> dict:
+    """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves, writes the report."""
+    det, frechet = bundle.load(model)
+    holdout = load_holdout(det, good, defective, masks, skip_bad=skip_bad)
+    good_s, bad_s = holdout.scores[holdout.labels == 0], holdout.scores[holdout.labels == 1]
+    if len(good_s) == 0 or len(bad_s) == 0:
+        raise BadDataset("the holdout needs at least one good and one defective image")
+    if target_catch is not None:
+        choice = threshold_for_catch(good_s, bad_s, target_catch)
+    else:
+        choice = threshold_for_false_reject(good_s, bad_s, 0.01 if target_false_reject is None else target_false_reject)
+    now = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
+    manifest = dict(det.manifest)
+    manifest["threshold"] = {**choice.to_dict(), "set_by": "tune", "set_at": now}
+    manifest["fingerprints"] = {**manifest.get("fingerprints", {}), "holdout": _fingerprint(holdout.paths)}
+    tuned = dataclasses.replace(det, threshold=float(choice.value), manifest=manifest)
+    out = output or model
+    bundle.save(tuned, frechet, out)
+    summary = metrics_summary(holdout, choice)
+    if report is not None:
+        page = write_report(report, holdout, choice, title=f"knowngood report: {Path(model).name}",
+                            model_info={"model_id": tuned.model_id, "bundle": str(out)})
+        summary["report"] = str(page)
+    summary["bundle"] = str(out)
+    return summary
+
+
+def _fingerprint(paths: list[Path]) -> str:
+    import hashlib
+
+    h = hashlib.sha256()
+    for p in sorted(paths):
+        h.update(p.name.encode())
+        h.update(hashlib.sha256(p.read_bytes()).digest())
+    return h.hexdigest()
+
+
+def _expand(paths: list[Path]) -> list[Path]:
+    files: list[Path] = []
+    for p in paths:
+        if p.is_dir():
+            files.extend(list_images(p))
+        elif p.is_file():
+            files.append(p)
+        else:
+            raise BadDataset(f"{p}: no such file or folder")
+    if not files:
+        raise BadDataset(f"no images found in {', '.join(map(str, paths))}")
+    return files
+
+
+def inspect(args) -> int:
+    det, _ = bundle.load(args.model)
+    files = _expand(args.paths)
+    if args.heatmaps is not None:
+        args.heatmaps.mkdir(parents=True, exist_ok=True)
+    flagged = 0
+    for start in range(0, len(files), max(1, args.batch)):
+        chunk, images = [], []
+        for path in files[start : start + args.batch]:
+            try:
+                images.append(read_image(path))
+                chunk.append(path)
+            except BadImage as exc:
+                if not args.skip_bad:
+                    raise
+                print(f"knowngood: skipped {path}: {exc}", file=sys.stderr)
+        for path, img, res in zip(chunk, images, det.inspect(images, batch=args.batch)):
+            flagged += res.verdict == "flag"
+            _emit(args, path, img, res)
+    return 1 if args.fail_on_flag and flagged else 0
+
+
+def _emit(args, path: Path, img: np.ndarray, res) -> None:
+    if args.json:
+        print(json.dumps({"image": str(path), "score": round(res.score, 6), "threshold": round(res.threshold, 6),
+                          "verdict": res.verdict}))
+    else:
+        print(f"{res.verdict:4}  {res.score:8.3f}  (threshold {res.threshold:.3f})  {path}")
+    if args.heatmaps is not None:
+        vmax = max(2 * res.threshold, 1e-6) if np.isfinite(res.threshold) else float(res.heatmap.max() or 1)
+        (args.heatmaps / f"{path.stem}.png").write_bytes(heatmap_png_bytes(img, res.heatmap, vmax))
+        np.save(args.heatmaps / f"{path.stem}.npy", res.heatmap.astype(np.float32))

@@ -1,0 +1,55 @@
+"""The labelled holdout: good/ and defective/ folders (sub-folders of defective/ are defect classes), optional
+masks matched to defective images by relative path and stem, and scoring it all into a HoldoutResult."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from training.data import list_images, load_folder, read_image
+from training.detector import Detector
+from training.errors import BadDataset, BadImage
+from training.report import HoldoutResult
+
+
+def defect_class(path: Path, defective_dir: Path) -> str:
+    rel = path.relative_to(defective_dir)
+    return rel.parts[0] if len(rel.parts) > 1 else "defective"
+
+
+def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.ndarray | None:
+    """The mask with the same relative path and stem (any image suffix), as a bool (H, W) array, or None."""
+    if masks_dir is None:
+        return None
+    rel = path.relative_to(defective_dir).with_suffix("")
+    for candidate in list_images(masks_dir / rel.parent) if (masks_dir / rel.parent).is_dir() else []:
+        if candidate.stem == rel.name:
+            return read_image(candidate).max(0) > 0.5
+    return None
+
+
+def load_holdout(det: Detector, good_dir: Path, defective_dir: Path, masks_dir: Path | None = None,
+                 *, skip_bad: bool = False) -> HoldoutResult:
+    """Reads and scores the whole holdout as batches. Labels: 0 good, 1 defective."""
+    good = load_folder(good_dir, skip_bad=skip_bad)
+    bad = load_folder(defective_dir, skip_bad=skip_bad)
+    masks = [None] * len(good.images)
+    for path, img in zip(bad.paths, bad.images):
+        m = find_mask(path, defective_dir, masks_dir)
+        if m is not None and m.shape != img.shape[-2:]:
+            raise BadImage(f"{path}: mask is {m.shape[1]} x {m.shape[0]}, image is {img.shape[2]} x {img.shape[1]}")
+        masks.append(m)
+    if masks_dir is not None and all(m is None for m in masks):
+        raise BadDataset(f"{masks_dir}: no mask matches any defective image (same relative path and stem)")
+    images = good.images + bad.images
+    results = det.inspect(images)
+    return HoldoutResult(
+        paths=good.paths + bad.paths,
+        labels=np.array([0] * len(good.images) + [1] * len(bad.images)),
+        classes=["good"] * len(good.images) + [defect_class(p, defective_dir) for p in bad.paths],
+        scores=np.array([r.score for r in results]),
+        images=images,
+        heatmaps=[r.heatmap for r in results],
+        masks=masks,
+    )
