@@ -58,3 +58,14 @@ def test_batch_scoring_equals_one_by_one(tiny_bundle, tiny_good_images):
     together = [r.score for r in det.inspect(tiny_good_images[:6])]
     alone = [det.inspect([im])[0].score for im in tiny_good_images[:6]]
     assert together == pytest.approx(alone, rel=1e-5, abs=1e-6)
+
+
+def test_onnx_runtime_gives_the_same_scores(tiny_bundle, tiny_good_images):
+    # ONNX Runtime (the open ONNX standard's reference runtime) against eager PyTorch on the same weights
+    det, _ = bundle.load(tiny_bundle)
+    images = tiny_good_images[:8]
+    eager = det.inspect(images)
+    fast = dataclasses.replace(det).use_onnx(threads=1).inspect(images)
+    for a, b in zip(eager, fast):
+        assert b.score == pytest.approx(a.score, rel=1e-4, abs=1e-5)  # float32 rounding between kernels
+        assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=1e-4)
