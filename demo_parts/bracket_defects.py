@@ -31,11 +31,11 @@ def scratch(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     s = scene.scale
     for _ in range(20):
         alpha = _scratch_alpha(scene, rng)
-        mask = (alpha > 0.3) & surface_mask(scene)
+        mask = (alpha > 0.12) & surface_mask(scene)
         if mask.sum() >= 6 * s:
             break
     sign = 1.0 if rng.random() < 0.65 else -1.0
-    scene.surface_delta += sign * rng.uniform(0.05, 0.24) * alpha
+    scene.surface_delta += sign * rng.uniform(0.07, 0.26) * alpha
     return mask
 
 
@@ -48,7 +48,7 @@ def _scratch_alpha(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     end = start + length * heading
     bend = rng.normal(0.0, 0.12) * length * np.array([-heading[1], heading[0]])
     d, t = f.dist_to_polyline(scene.x, scene.y, f.bezier(start, (start + end) / 2 + bend, end))
-    width = rng.uniform(0.5, 1.4) * s
+    width = rng.uniform(1.0, 2.0) * s
     taper = 0.45 + 0.55 * np.sqrt(np.sin(np.pi * t))  # scratches thin out where the tool lifted
     return np.clip(width / 2 + 0.5 - d, 0.0, 1.0) * taper
 
@@ -57,7 +57,7 @@ def pit(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     """A small crater: dark floor, and a bright wall on the side that faces the lamp."""
     s = scene.scale
     x0, y0 = surface_point(scene, rng, 4.0 * s)
-    r = rng.uniform(0.8, 2.4) * s
+    r = rng.uniform(1.2, 3.0) * s
     depth = rng.uniform(0.12, 0.4)
     dx, dy = scene.x - x0, scene.y - y0
     d = np.hypot(dx, dy)
@@ -90,7 +90,9 @@ def edge_burr(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     scene.lumps.append(lump)
     grain = f.smooth_noise(rng, (scene.size, scene.size), 0.7)
     scene.surface_delta += f.coverage(lump) * (0.06 + 0.05 * grain)  # torn metal is rougher and brighter
-    return (f.coverage(outer_sd(scene)) - before) > 0.2
+    after = f.coverage(outer_sd(scene))
+    # The whole lip counts, including its root on the plate, where it disturbs the rolled edge.
+    return ((after - before) > 0.2) | ((f.coverage(lump - 1.5 * s) > 0.3) & (after > 0.2))
 
 
 def _edge_point(scene: BracketScene, rng: np.random.Generator):

@@ -36,7 +36,7 @@ def save_checkpoint(fitter, path: Path) -> None:
 
 
 def load_checkpoint(fitter, path: Path) -> None:
-    state = torch.load(path, weights_only=True)
+    state = torch.load(path, weights_only=True, map_location="cpu")
     if state["signature"] != _signature(fitter):
         raise BadConfig(f"{path}: checkpoint is from a different configuration or data; delete it to start afresh")
     for k, n in (("E", fitter.E), ("G", fitter.G), ("D", fitter.D)):

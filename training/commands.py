@@ -15,8 +15,6 @@ from training.config import ModelConfig, TrainConfig
 from training.data import list_images, load_folder, read_image
 from training.errors import BadConfig, BadDataset, BadImage
 from training.heatmap import heatmap_png_bytes
-from training.holdout import load_holdout
-from training.report import metrics_summary, write_report
 from training.train import train_bundle
 from training.tuning import threshold_for_catch, threshold_for_false_reject
 
@@ -57,6 +55,9 @@ def tune_model(model: Path, good: Path, defective: Path, masks: Path | None, *, 
                target_false_reject: float | None = None, report: Path | None = None, output: Path | None = None,
                skip_bad: bool = False) -> dict:
     """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves, writes the report."""
+    from training.holdout import load_holdout  # matplotlib comes with the report: keep `inspect` light
+    from training.report import metrics_summary, write_report
+
     det, frechet = bundle.load(model)
     holdout = load_holdout(det, good, defective, masks, skip_bad=skip_bad)
     good_s, bad_s = holdout.scores[holdout.labels == 0], holdout.scores[holdout.labels == 1]

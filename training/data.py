@@ -69,7 +69,9 @@ def _decode_fallback(data: bytes, *, name: str, reason: Exception) -> np.ndarray
             return _normalise(np.asarray(arr), name=name)
         except Exception:
             pass
-    raise BadImage(f"{name}: not a readable image ({reason})") from None
+    kind = "truncated or corrupt" if data[:2] in (b"\xff\xd8", b"\x89P", b"BM", b"II", b"MM", b"GI") else "unknown type"
+    detail = str(reason).split(" <", 1)[0]  # PIL appends an object repr that means nothing to a user
+    raise BadImage(f"{name}: not a readable image ({kind}: {detail})") from None
 
 
 def _to_array(img: Image.Image, *, name: str) -> np.ndarray:

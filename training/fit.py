@@ -38,7 +38,7 @@ class FitResult:
 
 def gradient_penalty(critic: Critic, real: torch.Tensor, fake: torch.Tensor, gen: torch.Generator) -> torch.Tensor:
     """WGAN-GP term E[(‖∇D(x̂)‖₂ − 1)²] on random interpolates x̂ of real and fake (Gulrajani et al. 2017)."""
-    eps = torch.rand(len(real), 1, 1, 1, generator=gen)
+    eps = torch.rand(len(real), 1, 1, 1, generator=gen).to(real.device)
     mixed = (eps * real + (1 - eps) * fake).requires_grad_(True)
     out = critic(mixed).sum()
     (grad,) = torch.autograd.grad(out, mixed, create_graph=True)
@@ -51,11 +51,13 @@ def izi_f_loss(critic: Critic, x: torch.Tensor, recon: torch.Tensor, kappa: floa
 
 
 class Fitter:
-    def __init__(self, train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig):
+    def __init__(self, train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig,
+                 device: str = "cpu"):
         torch.manual_seed(tcfg.seed)
         self.train_x, self.val_x, self.mcfg, self.tcfg = train_x, val_x, mcfg, tcfg
-        self.gen = torch.Generator().manual_seed(tcfg.seed)
-        self.E, self.G, self.D = build(mcfg)
+        self.device = torch.device(device)
+        self.gen = torch.Generator().manual_seed(tcfg.seed)  # on the CPU: the same draws on any device
+        self.E, self.G, self.D = (net.to(self.device) for net in build(mcfg))
         opt = dict(lr=tcfg.lr, betas=tcfg.betas)
         self.opt_d = torch.optim.Adam(self.D.parameters(), **opt)
         self.opt_ge = torch.optim.Adam([*self.E.parameters(), *self.G.parameters()], **opt)
@@ -65,10 +67,11 @@ class Fitter:
 
     def batch(self) -> torch.Tensor:
         x = random_patches(self.train_x, self.tcfg.batch, self.patch, self.gen)
-        return process_variation(x, self.gen) if self.tcfg.augment else x
+        x = process_variation(x, self.gen) if self.tcfg.augment else x
+        return x.to(self.device)
 
     def noise(self, n: int, side: int) -> torch.Tensor:
-        return torch.rand(n, self.mcfg.z_channels, side, side, generator=self.gen) * 2 - 1
+        return (torch.rand(n, self.mcfg.z_channels, side, side, generator=self.gen) * 2 - 1).to(self.device)
 
     def train_step(self, encoder_only: bool) -> dict[str, float]:
         t, kappa = self.tcfg, self.mcfg.kappa
@@ -124,11 +127,12 @@ class Fitter:
         modes = [n.training for n in nets]
         for n in nets:
             n.eval()
-        v = self.val_x
+        v = self.val_x.to(self.device)
         recon = torch.cat([self.G(self.E(v[i : i + 64])) for i in range(0, len(v), 64)])
         rec = float((recon - v).abs().mean())
         gen = torch.Generator().manual_seed(1234)  # the same z every evaluation
         z = torch.rand(len(v), self.mcfg.z_channels, self.mcfg.latent_side, self.mcfg.latent_side, generator=gen)
+        z = z.to(self.device)
         fake = torch.cat([self.G(z[i : i + 64] * 2 - 1) for i in range(0, len(z), 64)])
         real_f = self.D.pooled_features(v).double().numpy()
         fake_f = self.D.pooled_features(fake).double().numpy()
@@ -146,13 +150,19 @@ class Fitter:
             self.best = (metrics["val_rec"], self.step, state)
 
 
+def default_device() -> str:
+    """A GPU when one is present (faster), else the CPU; the nets are small enough for either."""
+    return "cuda" if torch.cuda.is_available() else "cpu"
+
+
 def fit(train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig, *,
-        checkpoint: Path | None = None, progress: bool = True) -> FitResult:
+        checkpoint: Path | None = None, progress: bool = True, device: str | None = None) -> FitResult:
     """Trains on train_x (N, C, S, S); val_x are held-out known-good images. Stops after `tcfg.steps` steps, or
-    at `tcfg.minutes` if that comes first (then the work, and so the bundle, depends on the machine's speed)."""
+    at `tcfg.minutes` if that comes first (then the work, and so the bundle, depends on the machine's speed).
+    The returned nets are on the CPU in eval mode."""
     if tcfg.threads:
         torch.set_num_threads(tcfg.threads)
-    fitter = Fitter(train_x, val_x, mcfg, tcfg)
+    fitter = Fitter(train_x, val_x, mcfg, tcfg, device=device or default_device())
     if checkpoint is not None and checkpoint.exists():
         load_checkpoint(fitter, checkpoint)
     budget = tcfg.minutes * 60 if tcfg.minutes else None
@@ -175,7 +185,7 @@ def fit(train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: Tra
     _, chosen, state = fitter.best
     for key, net in (("E", fitter.E), ("G", fitter.G), ("D", fitter.D)):
         net.load_state_dict(state[key])
-        net.eval()
+        net.cpu().eval()
     return FitResult(fitter.E, fitter.G, fitter.D, fitter.step, time.monotonic() - start, chosen, fitter.history)
 
 

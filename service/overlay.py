@@ -1,0 +1,35 @@
+"""The heatmap overlay PNG for people, drawn on request from a stored or fresh working-resolution map."""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+import torch.nn.functional as F
+
+from training.heatmap import heatmap_png_bytes
+
+MAX_SIDE = 2048  # overlays of larger images are drawn scaled down to this long side (a PNG for eyes, not machines)
+
+
+def vmax_for(threshold: float, heat: np.ndarray) -> float:
+    """Colour scale: full tint at twice the threshold, as `knowngood inspect --heatmaps` draws it; with a threshold
+    of 0 (everything flagged) the map's own maximum, so the overlay still shows where the heat is."""
+    if np.isfinite(threshold) and threshold > 0:
+        return 2 * threshold
+    return max(float(np.nanmax(heat, initial=0.0)), 1e-6)
+
+
+def overlay_png(image: np.ndarray, heat: np.ndarray, *, height: int, width: int, threshold: float) -> bytes:
+    """image (C, h, w) in [0, 1] at any size, heat (S, S) at the model's working resolution -> PNG of the overlay at
+    the input image's (height, width), scaled down to MAX_SIDE on the long side."""
+    scale = min(1.0, MAX_SIDE / max(height, width))
+    size = (max(1, round(height * scale)), max(1, round(width * scale)))
+    img = _resize(torch.from_numpy(np.ascontiguousarray(image, dtype=np.float32)), size)
+    hm = _resize(torch.from_numpy(np.ascontiguousarray(heat, dtype=np.float32))[None], size)[0]
+    return heatmap_png_bytes(img, hm, vmax_for(threshold, hm))
+
+
+def _resize(t: torch.Tensor, size: tuple[int, int]) -> np.ndarray:
+    if tuple(t.shape[-2:]) != size:
+        t = F.interpolate(t[None], size=size, mode="bilinear", align_corners=False, antialias=True)[0]
+    return t.numpy()

@@ -1,0 +1,155 @@
+"""Inspections: score an image (or a batch), read them back, draw the heatmap, record an operator's review."""
+
+from __future__ import annotations
+
+import datetime as dt
+import time
+from typing import Annotated, Literal
+
+from fastapi import APIRouter, BackgroundTasks, File, Form, Query, Response, UploadFile
+
+from service import problems
+from service.deps import CurrentModel, ServiceState, State, StationCaller
+from service.overlay import overlay_png
+from service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due
+from service.problems import Problem
+from service.schemas import BatchCreated, InspectionCreated, InspectionList, InspectionOut, ReviewIn, Verdict
+from service.store import InspectionRecord, to_iso
+from training.data import decode_image
+from training.errors import KnowngoodError
+
+router = APIRouter(prefix="/v1/inspections", tags=["inspections"])
+Text = Annotated[str | None, Form(max_length=200, pattern=r"^[^\x00-\x1f]*$")]
+Inline = Annotated[Literal["inline"] | None, Query(description="'inline' adds the overlay PNG as base64")]
+IMAGE_HELP = "PNG, JPEG, BMP or TIFF (8 or 16 bit; gray, RGB or CMYK); checked by decoding, not by name"
+
+
+def _name(upload: UploadFile, label: str) -> str:
+    filename = (upload.filename or "")[:80]
+    return f"{label} {filename!r}" if filename else label
+
+
+def _find(state: ServiceState, inspection_id: str) -> InspectionRecord:
+    record = state.store.get_inspection(inspection_id=inspection_id)
+    if record is None:
+        raise Problem(404, f"no inspection with id {inspection_id[:64]!r}")
+    return record
+
+
+def _after(state: ServiceState, background: BackgroundTasks, count: int) -> None:
+    if prune_due(state, count):
+        background.add_task(prune, state)
+
+
+@router.post("", response_model=InspectionCreated, responses=problems.responses(401, 413, 422, 503))
+def create_inspection(
+    state: State,
+    caller: StationCaller,
+    model: CurrentModel,
+    background: BackgroundTasks,
+    image: Annotated[UploadFile, File(description=IMAGE_HELP)],
+    part_id: Text = None,
+    station: Text = None,
+    heatmap: Inline = None,
+) -> InspectionCreated:
+    """Inspect one image: verdict, anomaly score and threshold, committed to the audit store before the reply."""
+    upload = Upload(name=_name(image, "image"), data=image.file.read(), part_id=part_id)
+    [out] = inspect_uploads(state, model, caller, [upload], station=station, inline=heatmap == "inline")
+    _after(state, background, 1)
+    return out
+
+
+@router.post("/batch", response_model=BatchCreated, responses=problems.responses(401, 413, 422, 503))
+def create_batch(
+    state: State,
+    caller: StationCaller,
+    model: CurrentModel,
+    background: BackgroundTasks,
+    images: Annotated[list[UploadFile], File(description=f"one field per image; {IMAGE_HELP}")],
+    part_id: Annotated[list[str] | None, Form(description="none, or one per image in order")] = None,
+    station: Text = None,
+    heatmap: Inline = None,
+) -> BatchCreated:
+    """Inspect several images scored as one tensor batch; all are stored, or none if any is refused."""
+    start = time.perf_counter()
+    limit = state.settings.max_batch
+    if len(images) > limit:
+        raise Problem(422, f"{len(images)} images in one batch; the limit is {limit} (KNOWNGOOD_MAX_BATCH)")
+    parts = part_id or []
+    if parts and len(parts) != len(images):
+        raise Problem(422, f"{len(parts)} part_id fields for {len(images)} images: send none or one per image")
+    uploads = [
+        Upload(name=_name(f, f"images[{i}]"), data=f.file.read(), part_id=parts[i] if parts else None)
+        for i, f in enumerate(images)
+    ]
+    items = inspect_uploads(state, model, caller, uploads, station=station, inline=heatmap == "inline")
+    _after(state, background, len(items))
+    return BatchCreated(items=items, elapsed_ms=(time.perf_counter() - start) * 1000)
+
+
+@router.get("", response_model=InspectionList, responses=problems.responses(401, 422))
+def list_inspections(
+    state: State,
+    caller: StationCaller,
+    verdict: Verdict | None = None,
+    since: dt.datetime | None = None,
+    until: dt.datetime | None = None,
+    reviewed: Annotated[bool | None, Query(description="false = awaiting review")] = None,
+    limit: Annotated[int, Query(ge=1, le=1000)] = 50,
+) -> InspectionList:
+    """Recent inspections, newest first; verdict=flag&reviewed=false is the review queue."""
+    records = state.store.list_inspections(
+        verdict=verdict,
+        since=to_iso(since) if since else None,
+        until=to_iso(until) if until else None,
+        reviewed=reviewed,
+        limit=limit,
+    )
+    return InspectionList(items=[inspection_out(r) for r in records], count=len(records))
+
+
+@router.get("/{inspection_id}", response_model=InspectionOut, responses=problems.responses(401, 404, 422))
+def get_inspection(state: State, caller: StationCaller, inspection_id: str) -> InspectionOut:
+    """One inspection as the audit store holds it, with its review if there is one."""
+    return inspection_out(_find(state, inspection_id))
+
+
+@router.get(
+    "/{inspection_id}/heatmap.png",
+    response_class=Response,
+    response_model=None,
+    responses={
+        200: {"content": {"image/png": {}}, "description": "the overlay PNG"},
+        **problems.responses(401, 404, 422),
+    },
+)
+def get_heatmap(state: State, caller: StationCaller, inspection_id: str) -> Response:
+    """The heatmap overlay PNG at the image's own resolution (long side at most 2048 px)."""
+    record = _find(state, inspection_id)
+    heat = state.files.get_heatmap(record.id) if record.files_kept else None
+    if heat is None:
+        raise Problem(
+            404,
+            f"the heatmap of inspection {record.id} is no longer kept (retention: "
+            "KNOWNGOOD_RETENTION_COUNT, KNOWNGOOD_RETENTION_DAYS)",
+        )
+    image = heat.view
+    original = state.files.get_image(record.id)
+    if original is not None:
+        try:
+            image = decode_image(original, name=record.id, max_pixels=max(state.settings.max_pixels, 1), min_side=1)
+        except KnowngoodError:
+            pass  # it was decoded once when scored; if it cannot be now, the model's view still shows the part
+    png = overlay_png(image, heat.heat, height=heat.height, width=heat.width, threshold=record.threshold)
+    return Response(png, media_type="image/png", headers={"Cache-Control": "private, max-age=86400"})
+
+
+@router.post("/{inspection_id}/review", response_model=InspectionOut, responses=problems.responses(401, 404, 422))
+def review_inspection(state: State, caller: StationCaller, inspection_id: str, review: ReviewIn) -> InspectionOut:
+    """Record an operator's confirmation (good or defective); the latest review is shown, all are kept."""
+    record = state.store.add_review(
+        inspection_id=inspection_id, label=review.label, operator=review.operator, caller=caller.name
+    )
+    if record is None:
+        raise Problem(404, f"no inspection with id {inspection_id[:64]!r}")
+    return inspection_out(record)

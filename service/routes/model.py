@@ -1,0 +1,115 @@
+"""The model being served: read it, replace it with an uploaded bundle, roll back, change the threshold."""
+
+from __future__ import annotations
+
+from typing import Annotated
+
+from fastapi import APIRouter, File, Query, UploadFile
+
+from service import problems
+from service.deps import AdminCaller, CurrentModel, ServiceState, State, StationCaller
+from service.model_slot import LoadedModel, model_event, prepare
+from service.schemas import ModelEventList, ModelEventOut, ModelOut, ModelRef, ThresholdIn, ThresholdInfo
+from service.settings import Caller
+
+router = APIRouter(prefix="/v1/model", tags=["model"])
+
+
+def model_out(state: ServiceState, m: LoadedModel) -> ModelOut:
+    det = m.detector
+    t = det.manifest.get("threshold", {})
+    previous = state.slot.previous
+    return ModelOut(
+        id=det.model_id,
+        sha256=det.sha256,
+        size=det.cfg.size,
+        channels=det.cfg.channels,
+        runtime=m.runtime,
+        threshold=ThresholdInfo(
+            value=det.threshold, method=t.get("method"), set_by=t.get("set_by"), set_at=t.get("set_at")
+        ),
+        loaded_at=m.loaded_at,
+        source=m.source,
+        manifest=det.manifest,
+        previous=ModelRef(id=previous.detector.model_id, sha256=previous.detector.sha256) if previous else None,
+    )
+
+
+def _log(state: ServiceState, kind: str, caller: Caller, **extra):
+    """A `record` callback for the slot: the event is in the audit store before the swap happens."""
+    return lambda old, new: state.store.add_model_event(event=model_event(kind, new, caller.name, **extra))
+
+
+@router.get("", response_model=ModelOut, responses=problems.responses(401, 503))
+async def get_model(state: State, caller: StationCaller, model: CurrentModel) -> ModelOut:
+    """The model being served: ids, threshold and how it was set, manifest, and what rollback would restore."""
+    return model_out(state, model)
+
+
+@router.get("/events", response_model=ModelEventList, responses=problems.responses(401, 422))
+def list_model_events(
+    state: State, caller: StationCaller, limit: Annotated[int, Query(ge=1, le=1000)] = 50
+) -> ModelEventList:
+    """Model loads, swaps, rollbacks and threshold changes, newest first, with who and when."""
+    events = state.store.model_events(limit=limit)
+    return ModelEventList(
+        items=[
+            ModelEventOut(
+                time=e.time,
+                kind=e.kind,
+                model=ModelRef(id=e.model_id, sha256=e.model_sha256),
+                threshold=e.threshold,
+                previous_threshold=e.previous_threshold,
+                caller=e.caller,
+                operator=e.operator,
+                reason=e.reason,
+            )
+            for e in events
+        ]
+    )
+
+
+@router.put("", response_model=ModelOut, responses=problems.responses(401, 403, 413, 422))
+def put_model(
+    state: State,
+    caller: AdminCaller,
+    bundle: Annotated[UploadFile, File(description="a model bundle written by `knowngood train`")],
+) -> ModelOut:
+    """Replace the model: the bundle is validated completely, then swapped in atomically; the old one is kept."""
+    data = bundle.file.read()
+    new = prepare(
+        data, name=f"uploaded bundle {(bundle.filename or '')[:80]!r}", settings=state.settings, source="upload"
+    )
+    state.files.put_bundle(new.detector.sha256, data)
+    # requests that already hold the old model finish on it
+    state.slot.install(new, record=_log(state, "swap", caller))
+    return model_out(state, new)
+
+
+@router.post("/rollback", response_model=ModelOut, responses=problems.responses(401, 403, 409))
+def rollback_model(state: State, caller: AdminCaller) -> ModelOut:
+    """Swap back to the previous model (a second rollback undoes the first)."""
+    new = state.slot.rollback(record=_log(state, "rollback", caller))
+    return model_out(state, new)
+
+
+@router.put("/threshold", response_model=ModelOut, responses=problems.responses(401, 403, 422, 503))
+def put_threshold(state: State, caller: AdminCaller, change: ThresholdIn) -> ModelOut:
+    """Set the current model's threshold (flag when score > threshold), recorded with who, when and why."""
+    set_by = f"{change.operator} ({caller.name})"
+
+    def record(old: LoadedModel, new: LoadedModel) -> None:
+        event = model_event(
+            "threshold",
+            new,
+            caller.name,
+            previous=old.detector.threshold,
+            operator=change.operator,
+            reason=change.reason,
+        )
+        state.store.add_model_event(event=event)
+
+    new = state.slot.update(
+        lambda m: m.with_threshold(change.threshold, set_by=set_by, reason=change.reason), record=record
+    )
+    return model_out(state, new)

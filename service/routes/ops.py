@@ -1,0 +1,134 @@
+"""Operations: liveness, readiness, Prometheus metrics, drift, the CSV export and the operator page."""
+
+from __future__ import annotations
+
+import csv
+import datetime as dt
+import io
+from collections.abc import Iterator
+from dataclasses import fields
+from pathlib import Path
+
+from fastapi import APIRouter
+from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, PlainTextResponse, StreamingResponse
+
+from service import problems
+from service.deps import CurrentModel, ServiceState, State, StationCaller
+from service.metrics import CONTENT_TYPE
+from service.problems import Problem
+from service.schemas import DriftOut, HealthOut, ReadyOut
+from service.store import InspectionRecord, to_iso
+
+router = APIRouter(tags=["operations"])
+STATIC = Path(__file__).resolve().parent.parent / "static"
+PAGE_HEADERS = {
+    "Content-Security-Policy": "default-src 'self'; img-src 'self' blob: data:; frame-ancestors 'none'",
+    "X-Content-Type-Options": "nosniff",
+    "Referrer-Policy": "no-referrer",
+}
+CSV_COLUMNS = [f.name for f in fields(InspectionRecord)]
+
+
+@router.get("/healthz", response_model=HealthOut)
+async def healthz() -> HealthOut:
+    """Liveness: the process answers (no token needed)."""
+    return HealthOut(status="ok")
+
+
+@router.get("/readyz", response_model=ReadyOut, responses={503: {"model": ReadyOut, "description": "no model yet"}})
+async def readyz(state: State) -> JSONResponse:
+    """Readiness: 200 once a model is loaded, 503 until then (no token needed)."""
+    m = state.slot.current
+    if m is None:
+        body = ReadyOut(ready=False, model_id=None, detail="no model loaded; PUT /v1/model uploads one")
+        return JSONResponse(body.model_dump(), status_code=503)
+    return JSONResponse(ReadyOut(ready=True, model_id=m.detector.model_id, detail="serving").model_dump())
+
+
+@router.get(
+    "/metrics",
+    response_class=PlainTextResponse,
+    response_model=None,
+    responses={
+        200: {"content": {CONTENT_TYPE.split(";")[0]: {}}, "description": "Prometheus text format"},
+        **problems.responses(401),
+    },
+)
+async def metrics(state: State, caller: StationCaller) -> PlainTextResponse:
+    """Prometheus metrics: requests, latency, verdicts, model id, score quantiles (station token)."""
+    m = state.slot.current
+    text = state.metrics.render(
+        model_id=m.detector.model_id if m else None,
+        model_sha256=m.detector.sha256 if m else None,
+        threshold=m.detector.threshold if m else None,
+    )
+    return PlainTextResponse(text, media_type=CONTENT_TYPE)
+
+
+@router.get("/v1/drift", response_model=DriftOut, responses=problems.responses(401, 503))
+def drift(state: State, caller: StationCaller, model: CurrentModel) -> DriftOut:
+    """Drift: Fréchet distance of recent production images to the training reference, against its small-n baseline."""
+    s = state.settings
+    r = model.drift.assess(min_images=s.drift_min_images, sigmas=s.drift_sigmas)
+    return DriftOut(
+        status=r.status,
+        drifting=r.drifting,
+        detail=r.detail,
+        model_id=model.detector.model_id,
+        images=r.images,
+        needed=r.needed,
+        n=r.n,
+        distance=r.distance,
+        reference_mean=r.reference_mean,
+        reference_std=r.reference_std,
+        limit=r.limit,
+    )
+
+
+def _cell(value):
+    """Text a station sent (part id, station, operator) could start a spreadsheet formula: quote it as text."""
+    if isinstance(value, str) and value[:1] in ("=", "+", "-", "@", "\t", "\r"):
+        return "'" + value
+    return value
+
+
+def _csv_lines(state: ServiceState, since: str | None, until: str | None) -> Iterator[str]:
+    buf = io.StringIO()
+    writer = csv.writer(buf, lineterminator="\n")
+    writer.writerow(CSV_COLUMNS)
+    for record in state.store.iter_inspections(since=since, until=until):
+        writer.writerow([_cell(getattr(record, c)) for c in CSV_COLUMNS])
+        if buf.tell() > 64 * 1024:
+            yield buf.getvalue()
+            buf.seek(0)
+            buf.truncate()
+    yield buf.getvalue()
+
+
+@router.get(
+    "/v1/export.csv",
+    response_class=StreamingResponse,
+    response_model=None,
+    responses={
+        200: {"content": {"text/csv": {}}, "description": "one row per inspection, oldest first"},
+        **problems.responses(401, 422),
+    },
+)
+def export_csv(
+    state: State, caller: StationCaller, since: dt.datetime | None = None, until: dt.datetime | None = None
+) -> StreamingResponse:
+    """The audit rows of a time range as CSV: since <= time < until, both optional (UTC if no offset is given)."""
+    if since and until and to_iso(until) <= to_iso(since):
+        raise Problem(422, f"until ({until.isoformat()}) must be after since ({since.isoformat()})")
+    lines = _csv_lines(state, to_iso(since) if since else None, to_iso(until) if until else None)
+    return StreamingResponse(
+        lines,
+        media_type="text/csv; charset=utf-8",
+        headers={"Content-Disposition": 'attachment; filename="knowngood-inspections.csv"'},
+    )
+
+
+@router.get("/", response_class=HTMLResponse, response_model=None)
+async def operator_page() -> FileResponse:
+    """The operator page: inspect, watch, review flagged parts, see drift (the token is entered on the page)."""
+    return FileResponse(STATIC / "index.html", media_type="text/html", headers=PAGE_HEADERS)

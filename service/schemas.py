@@ -1,0 +1,158 @@
+"""Request and response bodies of REST v1. Requests forbid unknown fields; responses say what each field means."""
+
+from __future__ import annotations
+
+import datetime as dt
+from typing import Literal
+
+from pydantic import BaseModel, ConfigDict, Field
+
+Verdict = Literal["pass", "flag"]
+Label = Literal["good", "defective"]
+Operator = Field(min_length=1, max_length=100, pattern=r"^[^\x00-\x1f]+$", examples=["line 3, shift B"])
+
+
+class ProblemOut(BaseModel):
+    """RFC 9457 problem details; `errors` lists each invalid field of a 422."""
+
+    type: str = Field(examples=["urn:knowngood:problem:bad-image"])
+    title: str
+    status: int
+    detail: str
+    errors: list[FieldErrorOut] | None = None
+
+
+class FieldErrorOut(BaseModel):
+    field: str
+    message: str
+
+
+class ModelRef(BaseModel):
+    id: str = Field(description="model id: the first 16 hex digits of the weights' SHA-256")
+    sha256: str = Field(description="SHA-256 of the bundle file")
+
+
+class ImageInfo(BaseModel):
+    sha256: str
+    width: int
+    height: int
+
+
+class ReviewOut(BaseModel):
+    label: Label
+    operator: str
+    time: dt.datetime
+
+
+class InspectionOut(BaseModel):
+    """One inspection as the audit store holds it. score: higher = less like known-good; flag when score > threshold."""
+
+    id: str
+    time: dt.datetime
+    station: str | None
+    part_id: str | None
+    verdict: Verdict
+    score: float = Field(description="anomaly score, never negative; higher = less like the known-good parts")
+    threshold: float = Field(description="the part is flagged when score > threshold")
+    model: ModelRef
+    image: ImageInfo
+    elapsed_ms: float = Field(description="time the service spent on this image: decode, score, store")
+    heatmap_url: str | None = Field(description="overlay PNG; null once retention has deleted the heatmap")
+    review: ReviewOut | None
+
+
+class InspectionCreated(InspectionOut):
+    heatmap_png: str | None = Field(None, description="base64 PNG overlay, only with ?heatmap=inline")
+
+
+class BatchCreated(BaseModel):
+    items: list[InspectionCreated]
+    elapsed_ms: float = Field(description="wall time for the whole batch, scored as one tensor batch")
+
+
+class InspectionList(BaseModel):
+    items: list[InspectionOut]
+    count: int
+
+
+class ReviewIn(BaseModel):
+    """An operator's confirmation of a verdict."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    label: Label
+    operator: str = Operator
+
+
+class ThresholdIn(BaseModel):
+    """A new threshold for the current model: recorded with who, when and why."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    threshold: float = Field(ge=0, allow_inf_nan=False, description="flag when score > threshold")
+    operator: str = Operator
+    reason: str | None = Field(None, max_length=500)
+
+
+class ThresholdInfo(BaseModel):
+    value: float
+    method: str | None = Field(description="how it was chosen: conformal, tune, manual, ...")
+    set_by: str | None
+    set_at: str | None
+
+
+class ModelOut(BaseModel):
+    id: str
+    sha256: str
+    threshold: ThresholdInfo
+    size: int = Field(description="working resolution in px (square)")
+    channels: int = Field(description="1 = grayscale, 3 = RGB")
+    runtime: Literal["onnx", "torch"]
+    loaded_at: dt.datetime
+    source: str = Field(description="where this model came from: startup file, upload or rollback")
+    previous: ModelRef | None = Field(description="what POST /v1/model/rollback would restore")
+    manifest: dict = Field(description="the bundle's manifest.json, as loaded (threshold changes included)")
+
+
+class ModelEventOut(BaseModel):
+    time: dt.datetime
+    kind: Literal["load", "swap", "rollback", "threshold"]
+    model: ModelRef
+    threshold: float
+    previous_threshold: float | None
+    caller: str = Field(description="the token's label (role and fingerprint, or its name in the tokens file)")
+    operator: str | None
+    reason: str | None
+
+
+class ModelEventList(BaseModel):
+    items: list[ModelEventOut]
+
+
+class DriftOut(BaseModel):
+    """Fréchet distance on critic features: recent production images against the training reference."""
+
+    status: Literal["ok", "drifting", "not_enough_images", "no_reference"]
+    drifting: bool | None = Field(description="null while there is not enough to say")
+    detail: str
+    model_id: str
+    images: int = Field(description="production images in the window for this model")
+    needed: int = Field(description="images needed before drift is assessed")
+    n: int | None = Field(description="sample size used for both the distance and its reference")
+    distance: float | None
+    reference_mean: float | None = Field(description="distance of n known-good holdout images, mean")
+    reference_std: float | None
+    limit: float | None = Field(description="drifting when distance > limit")
+
+
+class HealthOut(BaseModel):
+    status: Literal["ok"]
+
+
+class ReadyOut(BaseModel):
+    ready: bool
+    model_id: str | None
+    detail: str
+
+
+ProblemOut.model_rebuild()

@@ -1,0 +1,138 @@
+"""Service settings: one pydantic-settings class (environment prefix KNOWNGOOD_), served by the cached
+`get_settings()` dependency that tests override. Nothing else in the service reads the environment."""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+from typing import Annotated, Literal
+
+from pydantic import Field, field_validator, model_validator
+from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
+
+from training.data import MAX_PIXELS, MIN_SIDE
+
+Role = Literal["station", "admin"]
+MIN_TOKEN_LENGTH = 12
+TokenList = Annotated[list[str], NoDecode]  # comma-separated in the environment, not JSON
+
+
+@dataclass(frozen=True)
+class Caller:
+    """Who sent a request: the token's role and a label that names it without revealing it."""
+
+    role: Role
+    name: str
+
+    @property
+    def is_admin(self) -> bool:
+        return self.role == "admin"
+
+
+class Settings(BaseSettings):
+    """Every service setting with its default; `KNOWNGOOD_<NAME>` in the environment sets `<name>`."""
+
+    model_config = SettingsConfigDict(env_prefix="KNOWNGOOD_", extra="forbid", protected_namespaces=())
+
+    model_path: Path | None = None  # bundle loaded at start; None = not ready until PUT /v1/model
+    db: Path = Path("knowngood.db")  # SQLite audit store (WAL)
+    data_dir: Path = Path("knowngood-data")  # heatmaps, optional images, uploaded bundles
+    host: str = "127.0.0.1"
+    port: int = Field(8000, ge=1, le=65535)
+    station_tokens: TokenList = []  # may inspect, review and read
+    admin_tokens: TokenList = []  # may also change the model and the threshold
+    tokens_file: Path | None = None  # lines of "<role> <token> [name]"; '#' starts a comment
+    max_upload_bytes: int = Field(32 * 1024 * 1024, ge=1024)  # request body limit (413) for inspections
+    max_bundle_bytes: int = Field(256 * 1024 * 1024, ge=1024)  # request body limit (413) for PUT /v1/model
+    max_pixels: int = Field(MAX_PIXELS, ge=1024)  # decompression-bomb guard, checked from the header (413)
+    min_side: int = Field(MIN_SIDE, ge=1)  # also at least a quarter of the model's working size (422)
+    max_batch: int = Field(16, ge=1, le=256)  # images per POST /v1/inspections/batch
+    torch_threads: int = Field(2, ge=1, le=64)
+    onnx: bool = True  # score with ONNX Runtime (same graph, a few times faster on CPU)
+    keep_images: bool = False  # also keep each uploaded image file (heatmaps are always kept)
+    retention_count: int = Field(10_000, ge=1)  # inspections whose files are kept; older files are deleted
+    retention_days: float = Field(90.0, gt=0)  # files older than this are deleted; audit rows are kept
+    drift_window: int = Field(200, ge=2)  # recent production images compared with the training reference
+    drift_min_images: int = Field(20, ge=2)  # fewer than this: drift says "not enough images"
+    drift_sigmas: float = Field(3.0, gt=0)  # drifting when distance > reference mean + this many std
+    log_level: Literal["critical", "error", "warning", "info", "debug"] = "info"
+
+    @field_validator("station_tokens", "admin_tokens", mode="before")
+    @classmethod
+    def _split(cls, value):
+        if isinstance(value, str):
+            return [t.strip() for t in value.split(",") if t.strip()] if value.strip() else []
+        return value
+
+    @field_validator("station_tokens", "admin_tokens")
+    @classmethod
+    def _check_tokens(cls, tokens: list[str]) -> list[str]:
+        for token in tokens:
+            _check_token(token)
+        return tokens
+
+    @field_validator("model_path", "tokens_file")
+    @classmethod
+    def _must_exist(cls, path: Path | None) -> Path | None:
+        if path is not None and not path.is_file():
+            raise ValueError(f"no such file: {path}")
+        return path
+
+    @model_validator(mode="after")
+    def _need_a_token(self) -> Settings:
+        tokens = self.tokens()
+        if not tokens:
+            raise ValueError(
+                "no tokens configured: set KNOWNGOOD_STATION_TOKENS / KNOWNGOOD_ADMIN_TOKENS (comma-separated) "
+                "or KNOWNGOOD_TOKENS_FILE"
+            )
+        return self
+
+    def tokens(self) -> dict[str, Caller]:
+        """Every accepted bearer token and who it stands for; a token given twice with two roles is an error."""
+        pairs = [("station", t, None) for t in self.station_tokens] + [("admin", t, None) for t in self.admin_tokens]
+        if self.tokens_file is not None:
+            pairs += read_tokens_file(self.tokens_file)
+        out: dict[str, Caller] = {}
+        for role, token, name in pairs:
+            if token in out and out[token].role != role:
+                raise ValueError(f"a token ({_label(role, token)}) is given both as station and as admin")
+            out[token] = Caller(role=role, name=name or _label(role, token))
+        return out
+
+
+def _check_token(token: str) -> None:
+    if not token or any(c.isspace() for c in token):
+        raise ValueError("a token must be non-empty and hold no spaces")
+    if len(token) < MIN_TOKEN_LENGTH:
+        raise ValueError(f"a token must be at least {MIN_TOKEN_LENGTH} characters long (got {len(token)})")
+
+
+def _label(role: str, token: str) -> str:
+    """Names a token in the audit trail by a short fingerprint, never by the secret itself."""
+    return f"{role}:{hashlib.sha256(token.encode()).hexdigest()[:8]}"
+
+
+def read_tokens_file(path: Path) -> list[tuple[Role, str, str | None]]:
+    """`<role> <token> [name]` per line; blank lines and '#' comments are skipped. Errors name the line."""
+    out: list[tuple[Role, str, str | None]] = []
+    for number, line in enumerate(path.read_text(encoding="utf-8").splitlines(), start=1):
+        words = line.split("#", 1)[0].split()
+        if not words:
+            continue
+        if len(words) not in (2, 3) or words[0] not in ("station", "admin"):
+            raise ValueError(f"{path}:{number}: expected '<station|admin> <token> [name]'")
+        try:
+            _check_token(words[1])
+        except ValueError as exc:
+            raise ValueError(f"{path}:{number}: {exc}") from None
+        out.append((words[0], words[1], words[2] if len(words) == 3 else None))
+    return out
+
+
+@lru_cache
+def get_settings() -> Settings:
+    """The process's settings, read once from the environment. Tests override this dependency."""
+    return Settings()

@@ -1,0 +1,182 @@
+"""`python -m tests.bench --out bench_out/bench.json [--quick] [--only NAME ...] [--minutes M]`
+
+Sections of the JSON: quality (per dataset, per method), best_peers, speed, memory, service, machine, settings.
+The JSON is rewritten after every dataset, so a long run that is stopped still leaves what it measured.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as dt
+import json
+import os
+import platform
+import sys
+import time
+from pathlib import Path
+
+import torch
+
+from tests.bench import datasets, memory, quality, speed
+from training import bundle
+
+QUICK_DATASETS = ("elpv-pooled", "demo-bracket")
+
+
+def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
+    p = argparse.ArgumentParser(prog="python -m tests.bench", description=__doc__.splitlines()[0])
+    p.add_argument("--out", type=Path, default=Path("bench_out/bench.json"))
+    p.add_argument(
+        "--quick",
+        action="store_true",
+        help=f"smoke run: {', '.join(QUICK_DATASETS)} only, 0.5 min training, short speed and service runs",
+    )
+    p.add_argument(
+        "--only",
+        action="append",
+        choices=datasets.NAMES,
+        metavar="NAME",
+        help=f"dataset to run (repeatable); one of {', '.join(datasets.NAMES)}",
+    )
+    p.add_argument("--minutes", type=float, default=None, help="knowngood training budget per dataset (8; quick 0.5)")
+    p.add_argument("--cache", type=Path, default=Path("bench_out/cache"), help="where the demo parts are rendered")
+    p.add_argument(
+        "--skip",
+        action="append",
+        default=[],
+        choices=("speed", "memory", "service"),
+        help="leave a section out (repeatable)",
+    )
+    args = p.parse_args(argv)
+    args.names = args.only or (list(QUICK_DATASETS) if args.quick else list(datasets.NAMES))
+    args.minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 8.0)
+    args.speed_repeats = 5 if args.quick else 30
+    args.memory_steps = 5 if args.quick else 50
+    args.service_seconds = 5 if args.quick else 30
+    return args
+
+
+def machine() -> dict:
+    model = next(
+        (
+            line.split(":", 1)[1].strip()
+            for line in Path("/proc/cpuinfo").read_text().splitlines()
+            if line.startswith("model name")
+        ),
+        platform.processor() or "unknown",
+    )
+    import numpy
+    import onnxruntime
+    import sklearn
+
+    return {
+        "cpu_model": model,
+        "cores": os.cpu_count(),
+        "cores_usable": len(os.sched_getaffinity(0)),
+        "load_average_at_start": [round(v, 2) for v in os.getloadavg()],
+        "python": platform.python_version(),
+        "torch": torch.__version__,
+        "numpy": numpy.__version__,
+        "scikit_learn": sklearn.__version__,
+        "onnxruntime": onnxruntime.__version__,
+        "torch_threads": torch.get_num_threads(),
+        "date": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def write(result: dict, out: Path) -> None:
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.with_name(out.name + ".tmp")
+    tmp.write_text(json.dumps(result, indent=2))
+    os.replace(tmp, out)
+
+
+def log(msg: str) -> None:
+    print(msg, flush=True)
+
+
+def run_quality(args, result: dict) -> dict[str, Path]:
+    bundles = {}
+    for name in args.names:
+        ds = datasets.load(name, args.cache)
+        result["datasets"][name] = ds.summary()
+        rows, bundles[name] = quality.evaluate(
+            ds, minutes=args.minutes, bundle_dir=args.out.parent / "bundles", log=log
+        )
+        result["quality"][name] = rows
+        result["best_peers"] = quality.best_peers(result["quality"])
+        write(result, args.out)
+    return bundles
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = parse_args(argv)
+    torch.set_num_threads(speed.THREADS)
+    started = time.monotonic()
+    result = {
+        "settings": {
+            "datasets": args.names,
+            "knowngood_minutes": args.minutes,
+            "quick": args.quick,
+            "threads": speed.THREADS,
+            "autoencoder_budget": "knowngood's fitting seconds",
+        },
+        "machine": machine(),
+        "datasets": {},
+        "quality": {},
+        "best_peers": {},
+    }
+    bundles = run_quality(args, result)
+    # the speed, memory and service sections use one trained bundle, elpv-pooled where it was run
+    ref = "elpv-pooled" if "elpv-pooled" in bundles else args.names[0]
+    det, _ = bundle.load(bundles[ref])
+    if "speed" not in args.skip:
+        log(f"speed: bundle of {ref}")
+        result["speed"] = {
+            "bundle_of": ref,
+            **speed.measure(det, datasets.native_images(ref, args.cache, "test", 32), repeats=args.speed_repeats),
+        }
+        write(result, args.out)
+    result["memory"] = {}
+    if "memory" not in args.skip:
+        log(f"memory: one `knowngood train` of {args.memory_steps} steps on the {ref} training images")
+        result["memory"]["training"] = memory.training_peak_rss(
+            datasets.native_images(ref, args.cache, "train"), steps=args.memory_steps
+        )
+        write(result, args.out)
+    if "service" not in args.skip:
+        side = int(datasets.native_images(ref, args.cache, "test", 1)[0].shape[-1])
+        log(f"service: {args.service_seconds} s, 8 clients, {side} px images")
+        result["service"] = memory.service_section(
+            bundles[ref], seconds=args.service_seconds, clients=8, image_size=side
+        )
+        result["memory"]["service"] = memory.service_memory(result["service"]) or result["service"].get("skipped")
+    result["machine"]["load_average_at_end"] = [round(v, 2) for v in os.getloadavg()]
+    result["seconds"] = round(time.monotonic() - started, 1)
+    write(result, args.out)
+    print_summary(result)
+    return 0
+
+
+def print_summary(result: dict) -> None:
+    print("\n## Image AUROC (higher is better)\n")
+    print(quality.markdown_table(result["quality"]))
+    print("\n## Best peer per dataset\n")
+    for name, b in result["best_peers"].items():
+        print(
+            f"- {name}: best peer {b['best_peer']} {b['best_peer_auroc']:.3f}; knowngood {b['knowngood_auroc']:.3f} "
+            f"(margin {b['margin']:+.3f})"
+        )
+    if "speed" in result:
+        print("\n## Inspection speed (128 px, heatmap and score included)\n")
+        print(speed.markdown(result["speed"]))
+    mem = result.get("memory", {})
+    if "training" in mem:
+        print(f"\nTraining peak RSS: {mem['training']['peak_rss_mib']:.0f} MiB")
+    if "service" in mem:
+        print(f"Service memory: {mem['service']}")
+    print(f"\n{result['seconds']:.0f} s in all")
+
+
+if __name__ == "__main__":
+    sys.exit(main())

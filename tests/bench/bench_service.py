@@ -1,0 +1,201 @@
+"""Service benchmark: the real server (`knowngood serve` in a subprocess on loopback) driven by concurrent clients
+(threads with httpx, one image per request) for a fixed time, with one model swap half way through.
+
+`run(bundle_path, seconds=30, clients=8, image_size=...)` returns throughput (req/s), p50/p99 latency (ms), errors,
+the swap's duration and status, and the server's RSS at rest (after start and warm-up, before load) and its peak
+(VmHWM from /proc/<pid>/status). `python -m tests.bench.bench_service MODEL [--seconds S]` prints the JSON.
+"""
+
+from __future__ import annotations
+
+import argparse
+import io
+import json
+import os
+import socket
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import zipfile
+from pathlib import Path
+
+import httpx
+import numpy as np
+from PIL import Image
+
+STATION = "bench-station-token-0001"
+ADMIN = "bench-admin-token-00001"
+
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _status_kib(pid: int, field: str) -> int:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith(field + ":"):
+            return int(line.split()[1])
+    raise KeyError(field)
+
+
+def _channels(bundle_path: Path) -> int:
+    with zipfile.ZipFile(bundle_path) as zf:
+        return int(json.loads(zf.read("manifest.json"))["model"]["channels"])
+
+
+def _images(n: int, size: int, channels: int, seed: int = 0) -> list[bytes]:
+    """Smooth random parts with noise, as PNG: realistic decode cost, not a constant image."""
+    rng = np.random.default_rng(seed)
+    yy, xx = np.mgrid[0:size, 0:size] / size
+    out = []
+    for _ in range(n):
+        cx, cy = rng.uniform(0.4, 0.6, 2)
+        img = 0.2 + 0.6 * np.exp(-((xx - cx) ** 2 + (yy - cy) ** 2) / 0.05) + rng.normal(0, 0.02, (size, size))
+        arr = (np.clip(img, 0, 1) * 255).astype(np.uint8)
+        if channels == 3:
+            arr = np.stack([arr, arr // 2 + 60, 255 - arr], axis=-1)
+        buf = io.BytesIO()
+        Image.fromarray(arr).save(buf, format="PNG")
+        out.append(buf.getvalue())
+    return out
+
+
+def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Popen, str, float]:
+    port = _free_port()
+    cmd = [
+        sys.executable,
+        "-m",
+        "training.cli",
+        "serve",
+        str(bundle_path),
+        "--port",
+        str(port),
+        "--db",
+        str(folder / "audit.db"),
+        "--data-dir",
+        str(folder / "data"),
+    ]
+    env = {
+        **os.environ,
+        "KNOWNGOOD_STATION_TOKENS": STATION,
+        "KNOWNGOOD_ADMIN_TOKENS": ADMIN,
+        "KNOWNGOOD_TORCH_THREADS": str(threads),
+        "KNOWNGOOD_LOG_LEVEL": "warning",
+    }
+    log = open(folder / "server.log", "wb")
+    start = time.perf_counter()
+    proc = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, env=env, cwd=folder)
+    url = f"http://127.0.0.1:{port}"
+    while time.perf_counter() - start < 120:
+        if proc.poll() is not None:
+            raise RuntimeError(f"server exited ({proc.returncode}): {(folder / 'server.log').read_text()[-2000:]}")
+        try:
+            if httpx.get(url + "/readyz", timeout=1).status_code == 200:
+                return proc, url, time.perf_counter() - start
+        except httpx.TransportError:
+            pass
+        time.sleep(0.05)
+    proc.kill()
+    raise RuntimeError("server not ready within 120 s")
+
+
+def _client(url: str, images: list[bytes], deadline: float, offset: int, out: list, lock: threading.Lock) -> None:
+    mine = []
+    with httpx.Client(base_url=url, headers={"Authorization": f"Bearer {STATION}"}, timeout=60) as http:
+        i = offset
+        while time.perf_counter() < deadline:
+            t0 = time.perf_counter()
+            try:
+                r = http.post("/v1/inspections", files={"image": ("part.png", images[i % len(images)])})
+                status = r.status_code
+            except httpx.HTTPError as exc:
+                status = type(exc).__name__
+            mine.append((t0, (time.perf_counter() - t0) * 1000, status))
+            i += 1
+    with lock:
+        out.extend(mine)
+
+
+def _swap(url: str, data: bytes, at: float, result: dict) -> None:
+    time.sleep(max(0.0, at - time.perf_counter()))
+    t0 = time.perf_counter()
+    with httpx.Client(base_url=url, headers={"Authorization": f"Bearer {ADMIN}"}, timeout=120) as http:
+        r = http.put("/v1/model", files={"bundle": ("model.kgm", data)})
+    result.update(status=r.status_code, ms=round((time.perf_counter() - t0) * 1000, 1))
+
+
+def run(bundle_path, *, seconds: float = 30, clients: int = 8, image_size: int | None = None, threads: int = 2) -> dict:
+    """Starts the server, warms it up, drives it with `clients` threads for `seconds`, swaps the model (the same
+    bundle uploaded again, so it is validated and exported afresh) half way through, and stops it."""
+    bundle_path = Path(bundle_path)
+    with zipfile.ZipFile(bundle_path) as zf:
+        size = image_size or int(json.loads(zf.read("manifest.json"))["model"]["size"])
+    images = _images(16, size, _channels(bundle_path))
+    with tempfile.TemporaryDirectory(prefix="kg-bench-service-") as tmp:
+        proc, url, startup = _start(bundle_path, Path(tmp), threads)
+        try:
+            with httpx.Client(base_url=url, headers={"Authorization": f"Bearer {STATION}"}, timeout=60) as http:
+                for data in images[:5]:
+                    http.post("/v1/inspections", files={"image": ("warm.png", data)}).raise_for_status()
+            rest_kib = _status_kib(proc.pid, "VmRSS")
+            samples, lock, swap = [], threading.Lock(), {}
+            start = time.perf_counter()
+            deadline = start + seconds
+            workers = [
+                threading.Thread(target=_client, args=(url, images, deadline, k, samples, lock)) for k in range(clients)
+            ]
+            workers.append(
+                threading.Thread(target=_swap, args=(url, bundle_path.read_bytes(), start + seconds / 2, swap))
+            )
+            for w in workers:
+                w.start()
+            for w in workers:
+                w.join()
+            wall = time.perf_counter() - start
+            peak_kib = _status_kib(proc.pid, "VmHWM")
+        finally:
+            proc.terminate()
+            try:
+                proc.wait(30)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+    ok = np.array([ms for _, ms, status in samples if status == 200])
+    return {
+        "seconds": round(wall, 2),
+        "clients": clients,
+        "image_size": size,
+        "torch_threads": threads,
+        "requests": len(samples),
+        "errors": sum(status != 200 for _, _, status in samples),
+        "throughput_rps": round(len(ok) / wall, 2),
+        "latency_p50_ms": round(float(np.percentile(ok, 50)), 2) if len(ok) else None,
+        "latency_p99_ms": round(float(np.percentile(ok, 99)), 2) if len(ok) else None,
+        "swap_status": swap.get("status"),
+        "swap_ms": swap.get("ms"),
+        "startup_s": round(startup, 2),
+        "rss_at_rest_mib": round(rest_kib / 1024, 1),
+        "peak_rss_mib": round(peak_kib / 1024, 1),
+    }
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("bundle", type=Path, metavar="MODEL")
+    parser.add_argument("--seconds", type=float, default=30)
+    parser.add_argument("--clients", type=int, default=8)
+    parser.add_argument("--image-size", type=int, default=None, help="px per side (default: the model's size)")
+    parser.add_argument("--threads", type=int, default=2, help="KNOWNGOOD_TORCH_THREADS for the server")
+    args = parser.parse_args(argv)
+    result = run(
+        args.bundle, seconds=args.seconds, clients=args.clients, image_size=args.image_size, threads=args.threads
+    )
+    print(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

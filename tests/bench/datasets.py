@@ -1,0 +1,188 @@
+"""The benchmark's named datasets: known-good training images, a labelled test set and, where they exist, masks.
+
+Splits (fixed; every method sees exactly the same images):
+
+- **elpv** (electroluminescence images of solar-cell modules' cells, 300 x 300 px gray; Buerhop-Lutz et al. 2018,
+  "A benchmark for visual identification of defective solar cells in electroluminescence imagery", loaded with
+  `elpv_dataset.utils.load_dataset`, 2624 cells, each labelled with a defect probability 0, 1/3, 2/3 or 1 and a
+  type 'mono' or 'poly'). A cell is *functional* when its probability is 0. The functional cells of the chosen
+  type(s), in the dataset's own order, are shuffled with `numpy.random.default_rng(0).permutation`; the first
+  `int(0.8 * n)` are the known-good training images, the rest are the good test images. The defective test
+  images are all cells of the chosen type(s) whose probability is at least the dataset's floor; cells between 0
+  and the floor are left out. Cells are resized once to 128 x 128 with `training.data.to_model_input`.
+
+  | name | types | defective = probability | train good | test good | test defective |
+  | --- | --- | --- | --- | --- | --- |
+  | elpv-mono | mono | = 1 | 470 | 118 | 313 |
+  | elpv-poly | poly | = 1 | 736 | 184 | 402 |
+  | elpv-pooled | mono + poly | = 1 | 1206 | 302 | 715 |
+  | elpv-pooled-p67 | mono + poly | >= 2/3 | 1206 | 302 | 821 |
+
+- **demo-bracket**, **demo-weave**: the invented demo parts of `demo_parts.render_scenario(dir, seed=0)`, rendered
+  once into a cache folder. Train = `<kind>/train/good`; test = `<kind>/holdout/good` (label 0) and every image
+  under `<kind>/holdout/defective/<defect>/` (label 1); the mask of a defective image is the file with the same
+  defect folder and stem under `<kind>/holdout/masks/`; good images have all-False masks. Images keep the
+  resolution they were rendered at.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from training.data import list_images, load_folder, read_image, to_model_input
+
+ELPV = {
+    "elpv-mono": (("mono",), 1.0),
+    "elpv-poly": (("poly",), 1.0),
+    "elpv-pooled": (("mono", "poly"), 1.0),
+    "elpv-pooled-p67": (("mono", "poly"), 2 / 3),
+}
+DEMO = {"demo-bracket": "bracket", "demo-weave": "weave"}
+NAMES = (*ELPV, *DEMO)
+ELPV_SIZE = 128
+TRAIN_SHARE = 0.8
+SPLIT_SEED = 0
+PROBA_TOL = 1e-6  # the probabilities are stored as 0.3333.., 0.6666..
+
+
+@dataclass
+class Dataset:
+    """Images are (C, H, W) float32 in [0, 1]. labels: 0 good / 1 defective. masks: one bool (H, W) per test image
+    (all False for good ones), or None when the dataset has no masks."""
+
+    name: str
+    train: list[np.ndarray]
+    test: list[np.ndarray]
+    labels: np.ndarray
+    masks: list[np.ndarray] | None
+    source: str
+
+    @property
+    def channels(self) -> int:
+        return 3 if any(im.shape[0] == 3 for im in self.train) else 1
+
+    def summary(self) -> dict:
+        return {
+            "train_good": len(self.train),
+            "test_good": int((self.labels == 0).sum()),
+            "test_defective": int((self.labels == 1).sum()),
+            "masks": self.masks is not None,
+            "source": self.source,
+        }
+
+
+def load(name: str, cache: Path) -> Dataset:
+    if name in ELPV:
+        return load_elpv(name)
+    if name in DEMO:
+        return load_demo(name, cache)
+    raise KeyError(f"unknown dataset {name!r}; expected one of {', '.join(NAMES)}")
+
+
+# ---------------------------------------------------------------------------------------------------- elpv
+
+
+def _elpv_raw():
+    from elpv_dataset.utils import load_dataset
+
+    return load_dataset()  # images (2624, 300, 300) uint8, probabilities (2624,), types (2624,) 'mono' / 'poly'
+
+
+def elpv_split(name: str, probs: np.ndarray, types: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Indices into the elpv arrays: (train good, test good, test defective), as in the module docstring."""
+    kinds, floor = ELPV[name]
+    chosen = np.isin(types, kinds)
+    functional = np.flatnonzero(chosen & (probs == 0))
+    order = functional[np.random.default_rng(SPLIT_SEED).permutation(len(functional))]
+    n_train = int(TRAIN_SHARE * len(functional))
+    defective = np.flatnonzero(chosen & (probs >= floor - PROBA_TOL))
+    return order[:n_train], order[n_train:], defective
+
+
+def _cells(images: np.ndarray, idx: np.ndarray, size: int | None) -> list[np.ndarray]:
+    out = []
+    for start in range(0, len(idx), 256):  # chunks: the 300 px float copies of a whole split are large
+        chunk = [images[i][None].astype(np.float32) / 255.0 for i in idx[start : start + 256]]
+        if size is not None:
+            chunk = list(to_model_input(chunk, size=size, channels=1).numpy())
+        out.extend(chunk)
+    return out
+
+
+def load_elpv(name: str, size: int | None = ELPV_SIZE) -> Dataset:
+    images, probs, types = _elpv_raw()
+    train, good, bad = elpv_split(name, probs, types)
+    test = _cells(images, good, size) + _cells(images, bad, size)
+    labels = np.array([0] * len(good) + [1] * len(bad))
+    return Dataset(name, _cells(images, train, size), test, labels, None, "elpv (Buerhop-Lutz et al. 2018)")
+
+
+def elpv_reduced(n_train: int, n_test: int, seed: int = 0, size: int = ELPV_SIZE) -> Dataset:
+    """A small fixed split of elpv-pooled (probability 1) for the default test suite: the first `n_train` of the
+    benchmark's training cells, the first `n_test` of its good test cells, and `n_test` defective cells drawn
+    with `default_rng(seed)`. Same images every run."""
+    images, probs, types = _elpv_raw()
+    train, good, bad = elpv_split("elpv-pooled", probs, types)
+    bad = np.sort(np.random.default_rng(seed).choice(bad, size=n_test, replace=False))
+    good = good[:n_test]
+    test = _cells(images, good, size) + _cells(images, bad, size)
+    labels = np.array([0] * len(good) + [1] * len(bad))
+    return Dataset(
+        "elpv-pooled-reduced",
+        _cells(images, train[:n_train], size),
+        test,
+        labels,
+        None,
+        "elpv (Buerhop-Lutz et al. 2018), reduced split",
+    )
+
+
+# ---------------------------------------------------------------------------------------------------- demo
+
+
+def demo_root(cache: Path, seed: int = 0) -> Path:
+    """Renders the demo scenario into `cache/demo-seed<seed>` once; later calls reuse it."""
+    root = Path(cache) / f"demo-seed{seed}"
+    done = root / ".complete"
+    if not done.exists():
+        from demo_parts import render_scenario
+
+        root.mkdir(parents=True, exist_ok=True)
+        render_scenario(root, seed=seed)
+        done.write_text("rendered by tests/bench/datasets.py\n")
+    return root
+
+
+def _mask_for(path: Path, defective: Path, masks: Path) -> np.ndarray:
+    rel = path.relative_to(defective).with_suffix("")
+    folder = masks / rel.parent
+    for candidate in list_images(folder) if folder.is_dir() else []:
+        if candidate.stem == rel.name:
+            return read_image(candidate).max(0) > 0.5
+    raise FileNotFoundError(f"{path}: no mask with the same stem under {folder}")
+
+
+def load_demo(name: str, cache: Path) -> Dataset:
+    kind_dir = demo_root(cache) / DEMO[name]
+    train = load_folder(kind_dir / "train" / "good").images
+    good = load_folder(kind_dir / "holdout" / "good").images
+    defective_dir = kind_dir / "holdout" / "defective"
+    bad = load_folder(defective_dir)
+    masks = [np.zeros(im.shape[-2:], dtype=bool) for im in good]
+    masks += [_mask_for(p, defective_dir, kind_dir / "holdout" / "masks") for p in bad.paths]
+    labels = np.array([0] * len(good) + [1] * len(bad.images))
+    return Dataset(name, train, good + bad.images, labels, masks, f"demo_parts.render_scenario seed 0, {DEMO[name]}")
+
+
+def native_images(name: str, cache: Path, split: str, n: int | None = None) -> list[np.ndarray]:
+    """The `split` ('train' or 'test') images of a dataset at their own resolution (elpv: 300 px), the first n."""
+    if name in ELPV:
+        images, probs, types = _elpv_raw()
+        train, good, bad = elpv_split(name, probs, types)
+        idx = train if split == "train" else np.concatenate([good, bad])
+        return _cells(images, idx[:n], None)
+    ds = load_demo(name, cache)
+    return (ds.train if split == "train" else ds.test)[:n]

@@ -1,0 +1,80 @@
+"""Memory section: peak resident memory of a real `knowngood train` process, and of the service (through
+`tests/bench/bench_service.py`, when it exists)."""
+
+from __future__ import annotations
+
+import importlib
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+from PIL import Image
+
+
+def _write_pngs(images: list[np.ndarray], folder: Path) -> None:
+    folder.mkdir(parents=True, exist_ok=True)
+    for i, im in enumerate(images):
+        arr = np.clip(np.round(im * 255), 0, 255).astype(np.uint8)
+        arr = arr[0] if arr.shape[0] == 1 else np.moveaxis(arr, 0, -1)
+        Image.fromarray(arr).save(folder / f"{i:05d}.png")
+
+
+def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
+    """Runs `knowngood train` on `images` (written as PNGs at their own resolution) for `steps` steps in a child
+    process and reads the child's peak RSS. `os.wait4` gives that one child's rusage (ru_maxrss, KiB on Linux);
+    `getrusage(RUSAGE_CHILDREN)` would give the largest of every child this process ever waited for."""
+    with tempfile.TemporaryDirectory(prefix="kg-bench-mem-") as tmp:
+        good = Path(tmp) / "good"
+        _write_pngs(images, good)
+        cmd = [
+            sys.executable,
+            "-m",
+            "training.cli",
+            "train",
+            str(good),
+            "-o",
+            str(Path(tmp) / "m.kgm"),
+            "--steps",
+            str(steps),
+            "--quiet",
+            "--fresh",
+        ]
+        start = time.monotonic()
+        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        _, status, usage = os.wait4(proc.pid, 0)
+        proc.returncode = os.waitstatus_to_exitcode(status)
+        err = proc.stderr.read().decode(errors="replace")[-2000:]
+        proc.stderr.close()
+    out = {
+        "command": f"knowngood train GOOD_DIR -o MODEL --steps {steps} --quiet --fresh",
+        "images": len(images),
+        "image_shape": list(images[0].shape),
+        "steps": steps,
+        "seconds": round(time.monotonic() - start, 1),
+        "exit_code": proc.returncode,
+        "peak_rss_mib": round(usage.ru_maxrss / 1024, 1),
+    }
+    if proc.returncode:
+        out["stderr_tail"] = err
+    return out
+
+
+def service_section(bundle_path: Path, *, seconds: float, clients: int, image_size: int) -> dict:
+    """Drives the real server through `tests.bench.bench_service.run`; a note instead when it is not there."""
+    try:
+        bench_service = importlib.import_module("tests.bench.bench_service")
+    except ImportError as exc:
+        return {"skipped": f"tests/bench/bench_service.py is not importable ({exc})"}
+    try:
+        return dict(bench_service.run(bundle_path, seconds=seconds, clients=clients, image_size=image_size))
+    except Exception as exc:  # the service is a colleague's moving part; the rest of the benchmark still counts
+        return {"skipped": f"bench_service.run failed: {type(exc).__name__}: {exc}"}
+
+
+def service_memory(service: dict) -> dict:
+    """The memory figures bench_service reports (any key naming RSS or memory), copied for the memory section."""
+    return {k: v for k, v in service.items() if "rss" in k.lower() or "mem" in k.lower()}

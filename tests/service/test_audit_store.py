@@ -1,0 +1,179 @@
+"""The audit store on its own: WAL, atomic batches, constraints, review history, retention, threads."""
+
+from __future__ import annotations
+
+import sqlite3
+import threading
+from dataclasses import replace
+
+import pytest
+from service_testkit import STATION_AUTH, png_bytes, post_image
+
+from service import pipeline
+from service.store import (
+    SCHEMA_VERSION,
+    AuditStore,
+    InspectionRecord,
+    ModelEvent,
+    SqliteStore,
+    connect,
+    create_schema,
+    insert_inspections,
+    select_inspections,
+    utc_now,
+)
+
+RECORD = InspectionRecord(
+    id="0" * 32,
+    time="2025-01-01T00:00:00.000000+00:00",
+    station="s",
+    part_id="p",
+    caller="station:1",
+    image_sha256="a" * 64,
+    image_width=10,
+    image_height=20,
+    model_id="m",
+    model_sha256="b" * 64,
+    score=1.5,
+    threshold=1.0,
+    verdict="flag",
+    elapsed_ms=3.0,
+)
+
+
+def _rec(i: int, **kw) -> InspectionRecord:
+    return replace(RECORD, id=f"{i:032x}", time=f"2025-01-01T00:00:{i:02d}.000000+00:00", **kw)
+
+
+@pytest.fixture
+def store(tmp_path):
+    s = SqliteStore(tmp_path / "audit.db")
+    yield s
+    s.close()
+
+
+def test_sqlite_store_implements_the_interface():
+    members = [n for n in vars(AuditStore) if not n.startswith("_")]
+    assert members and all(callable(getattr(SqliteStore, n, None)) for n in members)
+
+
+def test_wal_and_schema_version(store):
+    conn = connect(store.path)
+    assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
+    assert conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+
+
+def test_newer_schema_is_refused(tmp_path):
+    conn = connect(tmp_path / "new.db")
+    conn.execute(f"PRAGMA user_version={SCHEMA_VERSION + 1}")
+    with pytest.raises(RuntimeError, match="newer"):
+        create_schema(conn)
+
+
+def test_a_batch_is_stored_whole_or_not_at_all(store):
+    with pytest.raises(sqlite3.IntegrityError):
+        store.add_inspections(records=[_rec(1), _rec(1)])  # duplicate id in the second row
+    assert store.count_inspections() == 0
+    store.add_inspections(records=[_rec(1), _rec(2)])
+    assert store.count_inspections() == 2
+    assert store.get_inspection(inspection_id=_rec(2).id) == _rec(2)
+
+
+def test_verdict_is_constrained(store):
+    with pytest.raises(sqlite3.IntegrityError):
+        store.add_inspections(records=[_rec(1, verdict="maybe")])
+
+
+def test_data_functions_take_the_connection(tmp_path):
+    conn = connect(tmp_path / "f.db")
+    create_schema(conn)
+    insert_inspections(conn, records=[_rec(1), _rec(2, verdict="pass")])
+    assert [r.id for r in select_inspections(conn, verdict="pass")] == [_rec(2).id]
+    assert [r.id for r in select_inspections(conn, since=_rec(2).time)] == [_rec(2).id]
+    assert [r.id for r in select_inspections(conn, until=_rec(2).time)] == [_rec(1).id]
+
+
+def test_reviews_keep_history_and_the_row_holds_the_latest(store):
+    store.add_inspections(records=[_rec(1)])
+    assert store.add_review(inspection_id=_rec(1).id, label="good", operator="Kim", caller="c") is not None
+    latest = store.add_review(inspection_id=_rec(1).id, label="defective", operator="Lee", caller="c")
+    assert (latest.review_label, latest.review_operator) == ("defective", "Lee")
+    assert store.add_review(inspection_id="f" * 32, label="good", operator="x", caller="c") is None
+    history = connect(store.path).execute("SELECT label, operator FROM reviews ORDER BY seq").fetchall()
+    assert [tuple(r) for r in history] == [("good", "Kim"), ("defective", "Lee")]
+    assert store.list_inspections(reviewed=False) == []
+    assert [r.id for r in store.list_inspections(reviewed=True)] == [_rec(1).id]
+
+
+def test_model_events_and_latest_event(store):
+    event = ModelEvent(
+        time=utc_now(),
+        kind="threshold",
+        model_id="m",
+        model_sha256="b" * 64,
+        threshold=2.0,
+        caller="admin:1",
+        previous_threshold=1.0,
+        operator="Dana",
+        reason="retune",
+    )
+    store.add_model_event(event=event)
+    store.add_model_event(event=replace(event, threshold=2.5))
+    store.add_model_event(event=replace(event, kind="swap", threshold=3.0))
+    assert store.latest_event(model_sha256="b" * 64, kind="threshold").threshold == 2.5
+    assert store.latest_event(model_sha256="b" * 64).kind == "swap"
+    assert store.latest_event(model_sha256="c" * 64) is None
+    assert [e.threshold for e in store.model_events()] == [3.0, 2.5, 2.0]
+    with pytest.raises(sqlite3.IntegrityError):
+        store.add_model_event(event=replace(event, kind="guess"))
+
+
+def test_expired_files_by_count_and_by_age(store):
+    store.add_inspections(records=[_rec(i) for i in range(1, 6)])
+    assert store.expired_files(keep=3, before="2000-01-01") == [_rec(1).id, _rec(2).id]
+    assert store.expired_files(keep=100, before=_rec(3).time) == [_rec(1).id, _rec(2).id]
+    store.mark_files_deleted(inspection_ids=[_rec(1).id])
+    assert store.expired_files(keep=3, before="2000-01-01") == [_rec(2).id]
+    assert store.get_inspection(inspection_id=_rec(1).id).files_kept is False
+
+
+def test_concurrent_writers_on_their_own_connections(store):
+    def write(start: int) -> None:
+        for i in range(start, start + 25):
+            store.add_inspections(records=[_rec(i)])
+
+    threads = [threading.Thread(target=write, args=(k * 25,)) for k in range(4)]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert store.count_inspections() == 100
+
+
+def test_retention_deletes_files_and_keeps_rows(make_client, tiny_good_images, monkeypatch):
+    monkeypatch.setattr(pipeline, "PRUNE_EVERY", 2)
+    client = make_client(retention_count=2)
+    bodies = [post_image(client, png_bytes(img)).json() for img in tiny_good_images[:4]]
+    # the sweep ran after the 2nd and 4th responses: only the newest two keep their heatmaps
+    listed = {i["id"]: i for i in client.get("/v1/inspections", headers=STATION_AUTH).json()["items"]}
+    assert [listed[b["id"]]["heatmap_url"] is None for b in bodies] == [True, True, False, False]
+    r = client.get(bodies[0]["heatmap_url"], headers=STATION_AUTH)
+    assert r.status_code == 404 and "retention" in r.json()["detail"]
+    assert client.get(bodies[3]["heatmap_url"], headers=STATION_AUTH).status_code == 200
+    heatmaps = sorted(p.stem for p in (client.app.state.service.settings.data_dir / "heatmaps").iterdir())
+    assert heatmaps == sorted(b["id"] for b in bodies[2:])
+    assert client.app.state.service.store.count_inspections() == 4  # audit rows stay
+
+
+def test_retention_by_age(make_client, good_png):
+    client = make_client(retention_days=1e-9)  # about 0.1 ms: everything already stored is too old
+    body = post_image(client, good_png).json()
+    assert pipeline.prune(client.app.state.service) == 1
+    assert client.get(f"/v1/inspections/{body['id']}", headers=STATION_AUTH).json()["heatmap_url"] is None
+
+
+def test_file_names_come_only_from_generated_ids(client):
+    files = client.app.state.service.files
+    for bad in ("../../etc/passwd", "0" * 31 + "/", "A" * 32):
+        with pytest.raises(ValueError):
+            files.get_heatmap(bad)

@@ -1,0 +1,105 @@
+"""The `knowngood` command end to end on a small rendering of the demo parts: train, tune, inspect, errors."""
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from demo_parts import render_scenario
+from training import bundle
+from training.cli import main
+
+STEPS = "12"
+
+
+@pytest.fixture(scope="module")
+def scenario(tmp_path_factory):
+    root = tmp_path_factory.mktemp("scenario")
+    kinds = render_scenario(root, seed=3, size=64, n_train=32, n_holdout_good=8, n_holdout_defective_per_kind=2)
+    return kinds["bracket"]
+
+
+@pytest.fixture(scope="module")
+def trained(scenario, tmp_path_factory):
+    model = tmp_path_factory.mktemp("model") / "bracket.kgm"
+    code = main(["train", str(scenario / "train" / "good"), "-o", str(model), "--steps", STEPS, "--size", "64",
+                 "--quiet"])
+    assert code == 0
+    return model
+
+
+def test_train_writes_a_self_describing_bundle(trained):
+    det, frechet = bundle.load(trained)
+    m = det.manifest
+    assert m["training"]["steps_done"] == int(STEPS) and m["preprocessing"]["size"] == 64
+    assert m["threshold"]["method"].startswith("conformal") and np.isfinite(det.threshold)
+    assert m["fingerprints"]["training"] and m["score"]["direction"].startswith("higher")
+    assert not trained.with_name(trained.name + ".ckpt").exists()  # the resume checkpoint is cleaned up
+
+
+def test_same_seed_data_and_steps_give_the_same_bundle(trained, scenario, tmp_path):
+    again = tmp_path / "again.kgm"
+    assert main(["train", str(scenario / "train" / "good"), "-o", str(again), "--steps", STEPS, "--size", "64",
+                 "--quiet"]) == 0
+    a, b = bundle.load(trained)[0], bundle.load(again)[0]
+    assert a.model_id == b.model_id  # the id is the SHA-256 of the weights
+    assert a.threshold == b.threshold
+
+
+def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, capsys):
+    out, report = tmp_path / "tuned.kgm", tmp_path / "report"
+    h = scenario / "holdout"
+    code = main(["tune", str(trained), "--good", str(h / "good"), "--defective", str(h / "defective"),
+                 "--masks", str(h / "masks"), "--target-catch", "0.5", "--report", str(report), "-o", str(out)])
+    assert code == 0
+    summary = json.loads(capsys.readouterr().out)
+    det = bundle.load(out)[0]
+    assert det.manifest["threshold"]["method"] == summary["threshold"]["method"]
+    assert det.threshold == pytest.approx(summary["threshold"]["value"])
+    assert summary["catch"]["rate"] >= 0.5 and summary["pixel_auroc"] is not None
+    assert (report / "index.html").exists() and (report / "roc.png").exists()
+    assert det.manifest["fingerprints"]["holdout"]
+
+
+def test_inspect_json_and_heatmaps(trained, scenario, tmp_path, capsys):
+    folder = scenario / "holdout" / "defective"
+    code = main(["inspect", str(trained), str(folder), "--json", "--heatmaps", str(tmp_path)])
+    lines = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert code == 0 and len(lines) == len(list(folder.rglob("*.png")))
+    for row in lines:
+        assert set(row) == {"image", "score", "threshold", "verdict"}
+        assert row["verdict"] == ("flag" if row["score"] > row["threshold"] else "pass")
+    stem = json.loads(json.dumps(lines[0]))["image"].rsplit("/", 1)[1][:-4]
+    heat = np.load(tmp_path / f"{stem}.npy")
+    assert heat.dtype == np.float32 and heat.shape == (64, 64)  # the input image's own resolution
+    with Image.open(tmp_path / f"{stem}.png") as overlay:
+        assert overlay.size == (64, 64)
+
+
+def test_fail_on_flag_exit_code(trained, scenario, tmp_path):
+    big = tmp_path / "odd.png"
+    Image.fromarray(np.random.default_rng(0).integers(0, 255, (64, 64), dtype=np.uint8)).save(big)
+    assert main(["inspect", str(trained), str(big), "--fail-on-flag"]) == 1  # noise is nothing like the part
+    good = sorted((scenario / "train" / "good").glob("*.png"))[0]
+    assert main(["inspect", str(trained), str(good)]) == 0  # without the flag, flags do not change the exit code
+
+
+def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
+    broken = tmp_path / "broken.png"
+    broken.write_bytes(b"\x89PNG\r\n\x1a\n truncated")
+    cases = [
+        ["inspect", str(trained), str(broken)],
+        ["inspect", str(tmp_path / "missing.kgm"), str(broken)],
+        ["train", str(tmp_path / "nowhere"), "-o", str(tmp_path / "m.kgm")],
+        ["tune", str(broken), "--good", str(tmp_path), "--defective", str(tmp_path)],
+    ]
+    for args in cases:
+        proc = subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True)
+        assert proc.returncode == 2, proc.stderr
+        lines = proc.stderr.strip().splitlines()
+        assert len(lines) == 1 and lines[0].startswith("knowngood: error:") and "Traceback" not in proc.stderr
+    assert "broken.png" in subprocess.run([sys.executable, "-m", "training.cli", *cases[0]], capture_output=True,
+                                          text=True).stderr

@@ -1,0 +1,312 @@
+"""The tuning report: metrics of a scored, labelled holdout as JSON-ready numbers, and as one self-contained HTML
+page (index.html) with PNG plots and a gallery of the worst misses beside it.
+
+Direction, everywhere: a higher anomaly score means less like the known-good parts; a part is flagged when
+score > threshold.
+"""
+
+from __future__ import annotations
+
+import html
+from dataclasses import asdict, dataclass
+from pathlib import Path
+
+import matplotlib
+import numpy as np
+from PIL import Image
+from sklearn import metrics as skm
+
+matplotlib.use("Agg")  # files only, never a window; must precede the pyplot import
+import matplotlib.pyplot as plt  # noqa: E402
+
+from training.heatmap import overlay_png  # noqa: E402
+from training.metrics import average_precision, image_auroc, pixel_auroc, pro_score  # noqa: E402
+from training.tuning import Rate, ThresholdChoice, per_class_catch  # noqa: E402
+
+PRO_MAX_FPR = 0.3
+GALLERY_SIZE = 8
+CAUTION = (
+    "The verdict is decision support, not a release decision. Safety-critical parts still need the inspection "
+    "that local codes and the customer's quality standards require."
+)
+
+
+@dataclass
+class HoldoutResult:
+    """A scored, labelled holdout. Scores and heatmaps: higher = less like known-good."""
+
+    paths: list[Path]
+    labels: np.ndarray  # (N,) 0 good, 1 defective
+    classes: list[str]  # "good" or the defect class (sub-folder of defective/, or "defective")
+    scores: np.ndarray  # (N,) anomaly scores
+    images: list[np.ndarray]  # (C, H, W) float32 in [0, 1]
+    heatmaps: list[np.ndarray]  # (H, W) float32, same units as scores
+    masks: list[np.ndarray | None]  # (H, W) bool or None
+
+
+def _pixel_sets(h: HoldoutResult) -> tuple[list, list] | None:
+    """Masks and maps for the pixel metrics: every good image (no defect pixels) and each defective image that has
+    a mask; a defective image without a mask is left out, as its pixels' labels are unknown."""
+    if not any(m is not None for m, y in zip(h.masks, h.labels, strict=True) if y == 1):
+        return None
+    masks, maps = [], []
+    for y, m, heat in zip(h.labels, h.masks, h.heatmaps, strict=True):
+        if y == 0:
+            masks.append(np.zeros(np.shape(heat), dtype=bool) if m is None else np.asarray(m, dtype=bool))
+            maps.append(heat)
+        elif m is not None:
+            masks.append(np.asarray(m, dtype=bool))
+            maps.append(heat)
+    return masks, maps
+
+
+def metrics_summary(holdout: HoldoutResult, choice: ThresholdChoice) -> dict:
+    """JSON-ready metrics of `holdout` at `choice.value` (flag when score > value); rates are recomputed on this
+    holdout with 95 % Clopper-Pearson intervals. A metric that needs a missing class or masks is None."""
+    y, s, t = np.asarray(holdout.labels), np.asarray(holdout.scores, dtype=np.float64), float(choice.value)
+    good, bad = s[y == 0], s[y == 1]
+    both = len(good) > 0 and len(bad) > 0
+    pix = _pixel_sets(holdout)
+    has_pix = pix is not None and any(m.any() for m in pix[0]) and not all(m.all() for m in pix[0])
+    classes = {c: int(sum(1 for k in holdout.classes if k == c)) for c in sorted(set(holdout.classes))}
+    return {
+        "n": {"good": len(good), "defective": len(bad), "per_class": classes},
+        "image_auroc": image_auroc(y, s) if both else None,
+        "average_precision": average_precision(y, s) if both else None,
+        "pixel_auroc": pixel_auroc(*pix) if has_pix else None,
+        "pro": pro_score(*pix, max_fpr=PRO_MAX_FPR) if has_pix else None,
+        "pro_max_fpr": PRO_MAX_FPR,
+        "threshold": choice.to_dict(),
+        "false_reject": asdict(Rate.of(int((good > t).sum()), len(good))) if len(good) else None,
+        "catch": asdict(Rate.of(int((bad > t).sum()), len(bad))) if len(bad) else None,
+        "per_class_catch": {c: asdict(r) for c, r in per_class_catch(s, holdout.classes, t).items()},
+    }
+
+
+# ---------------------------------------------------------------- plots (one PNG each)
+
+
+def _save(fig, path: Path) -> str:
+    fig.tight_layout()
+    fig.savefig(path, dpi=100)
+    plt.close(fig)
+    return path.name
+
+
+def _plot_roc(out: Path, y, s, fr: dict, catch: dict) -> str:
+    fpr, tpr, _ = skm.roc_curve(y, s)
+    fig, ax = plt.subplots(figsize=(4.5, 4))
+    ax.plot(fpr, tpr, label="ROC")
+    ax.plot([0, 1], [0, 1], ls=":", c="grey", label="chance")
+    ax.plot(fr["rate"], catch["rate"], "o", c="crimson", label="threshold")
+    ax.set(xlabel="false-reject rate (good flagged)", ylabel="catch rate (defective flagged)", title="ROC")
+    ax.legend(loc="lower right")
+    return _save(fig, out / "roc.png")
+
+
+def _plot_pr(out: Path, y, s, t: float) -> str:
+    precision, recall, _ = skm.precision_recall_curve(y, s)
+    flagged = s > t
+    fig, ax = plt.subplots(figsize=(4.5, 4))
+    ax.step(recall, precision, where="post", label="precision-recall")
+    if flagged.any():  # the operating point: recall = catch rate, precision = share of flagged that are defective
+        ax.plot(
+            (flagged & (y == 1)).sum() / (y == 1).sum(), (y[flagged] == 1).mean(), "o", c="crimson", label="threshold"
+        )
+    ax.set(xlabel="recall (catch rate)", ylabel="precision (flagged that are defective)", ylim=(0, 1.02))
+    ax.set_title("Precision-recall")
+    ax.legend(loc="lower left")
+    return _save(fig, out / "precision_recall.png")
+
+
+def _plot_hist(out: Path, y, s, t: float) -> str:
+    bins = np.histogram_bin_edges(np.append(s, t), bins=30)
+    fig, ax = plt.subplots(figsize=(6, 3.5))
+    ax.hist(s[y == 0], bins=bins, alpha=0.6, label=f"good (n={int((y == 0).sum())})", color="tab:green")
+    ax.hist(s[y == 1], bins=bins, alpha=0.6, label=f"defective (n={int((y == 1).sum())})", color="tab:red")
+    ax.axvline(t, c="black", ls="--", label=f"threshold {t:.4g}")
+    ax.set(xlabel="anomaly score (higher = less like known-good)", ylabel="images", title="Scores")
+    ax.legend()
+    return _save(fig, out / "scores.png")
+
+
+def _plot_confusion(out: Path, cells: list[list[int]]) -> str:
+    counts = np.array(cells, dtype=float)
+    rates = counts / np.maximum(counts.sum(1, keepdims=True), 1)
+    fig, ax = plt.subplots(figsize=(4, 3.5))
+    ax.imshow(rates, cmap="Blues", vmin=0, vmax=1)
+    for i in range(2):
+        for j in range(2):
+            ax.text(
+                j,
+                i,
+                f"{int(counts[i, j])}\n{100 * rates[i, j]:.1f} %",
+                ha="center",
+                va="center",
+                color="white" if rates[i, j] > 0.5 else "black",
+            )
+    ax.set_xticks([0, 1], ["pass", "flag"])
+    ax.set_yticks([0, 1], ["good", "defective"])
+    ax.set(xlabel="verdict", ylabel="actual", title="Confusion matrix")
+    return _save(fig, out / "confusion.png")
+
+
+def _plot_per_class(out: Path, per_class: dict) -> str:
+    names = list(per_class)
+    rate = np.array([per_class[c]["rate"] for c in names])
+    err = np.array([rate - [per_class[c]["low"] for c in names], [per_class[c]["high"] for c in names] - rate])
+    fig, ax = plt.subplots(figsize=(max(4, 0.8 * len(names) + 2), 3.5))
+    ax.bar(names, rate, yerr=err, capsize=4, color="tab:blue")
+    ax.set(ylim=(0, 1.05), ylabel="catch rate", title="Catch rate per defect class (95 % CI)")
+    ax.tick_params(axis="x", rotation=30)
+    return _save(fig, out / "catch_per_class.png")
+
+
+# ---------------------------------------------------------------- gallery of the worst misses
+
+
+def _to_uint8(image: np.ndarray) -> Image.Image:
+    img = np.clip(np.asarray(image, dtype=np.float32), 0, 1)
+    img = img[0] if img.shape[0] == 1 else img.transpose(1, 2, 0)
+    return Image.fromarray((img * 255 + 0.5).astype(np.uint8))
+
+
+def _gallery(out: Path, h: HoldoutResult, t: float) -> dict[str, list[dict]]:
+    """Escapes (defective, lowest scores, passed) and false rejects (good, highest scores, flagged), up to 8 each."""
+    s, y = np.asarray(h.scores, dtype=np.float64), np.asarray(h.labels)
+    escapes = [i for i in np.argsort(s, kind="stable") if y[i] == 1 and s[i] <= t][:GALLERY_SIZE]
+    rejects = [i for i in np.argsort(-s, kind="stable") if y[i] == 0 and s[i] > t][:GALLERY_SIZE]
+    vmax = 2 * t if np.isfinite(t) and t > 0 else max(float(np.max([m.max() for m in h.heatmaps])), 1e-6)
+    folder = out / "gallery"
+    folder.mkdir(exist_ok=True)
+    for stale in [*folder.glob("escape_*.png"), *folder.glob("false_reject_*.png")]:  # from an earlier report here
+        stale.unlink()
+    result: dict[str, list[dict]] = {}
+    for kind, idx in (("escape", escapes), ("false_reject", rejects)):
+        result[kind] = []
+        for n, i in enumerate(idx, 1):
+            stem = f"{kind}_{n:02d}"
+            files = {"image": f"gallery/{stem}_image.png", "overlay": f"gallery/{stem}_overlay.png"}
+            _to_uint8(h.images[i]).save(out / files["image"])
+            overlay_png(h.images[i], h.heatmaps[i], vmax).save(out / files["overlay"])
+            if h.masks[i] is not None:
+                files["mask"] = f"gallery/{stem}_mask.png"
+                Image.fromarray(np.asarray(h.masks[i], dtype=np.uint8) * 255).save(out / files["mask"])
+            result[kind].append({"path": str(h.paths[i]), "class": h.classes[i], "score": float(s[i]), **files})
+    return result
+
+
+# ---------------------------------------------------------------- HTML
+
+_CSS = """body{font-family:system-ui,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222}
+table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #ccc;padding:.3em .7em;text-align:left}
+th{background:#f3f3f3}.caution{background:#fff6e0;border-left:4px solid #e0a000;padding:.6em 1em}
+.plots img{max-width:48%;margin:.5%}figure{display:inline-block;margin:.4em;text-align:center}
+figure img{width:128px;height:128px;object-fit:contain;image-rendering:pixelated;border:1px solid #ddd}
+figcaption{font-size:.8em;max-width:400px;overflow-wrap:anywhere}"""
+
+
+def _e(x) -> str:
+    return html.escape(str(x))
+
+
+def _rate_text(r: dict | None) -> str:
+    if r is None:
+        return "n/a"
+    return f"{100 * r['rate']:.1f} % ({r['k']} / {r['n']}; 95 % CI {100 * r['low']:.1f}–{100 * r['high']:.1f} %)"
+
+
+def _num(x: float | None) -> str:
+    return "n/a" if x is None else f"{x:.3f}"
+
+
+def _rows(rows) -> str:
+    return "".join(f"<tr><th>{_e(k)}</th><td>{_e(v)}</td></tr>" for k, v in rows)
+
+
+def _headline(m: dict) -> str:
+    th = m["threshold"]
+    rows = [("Image AUROC", _num(m["image_auroc"])), ("Average precision", _num(m["average_precision"]))]
+    if m["pixel_auroc"] is not None:
+        rows += [
+            ("Pixel AUROC", _num(m["pixel_auroc"])),
+            (f"PRO (false-positive rate up to {100 * m['pro_max_fpr']:.0f} %)", _num(m["pro"])),
+        ]
+    rows += [
+        ("Threshold", f"{th['value']:.4g} (method: {th['method']}, target {th['target']:g})"),
+        ("False-reject rate (good flagged)", _rate_text(m["false_reject"])),
+        ("Catch rate (defective flagged)", _rate_text(m["catch"])),
+    ]
+    rows += [("Images: good", m["n"]["good"]), ("Images: defective", m["n"]["defective"])]
+    rows += [(f"Images: defective, {c}", n) for c, n in m["n"]["per_class"].items() if c != "good"]
+    return f"<table>{_rows(rows)}</table>"
+
+
+def _confusion_table(m: dict, cells: list[list[int]]) -> str:
+    fr, ca = m["false_reject"], m["catch"]
+    good = f"<tr><th>good</th><td>{cells[0][0]}</td><td>{cells[0][1]} — {_e(_rate_text(fr))}</td></tr>"
+    bad = f"<tr><th>defective</th><td>{cells[1][0]}</td><td>{cells[1][1]} — {_e(_rate_text(ca))}</td></tr>"
+    return f"<table><tr><th>actual \\ verdict</th><th>pass</th><th>flag</th></tr>{good}{bad}</table>"
+
+
+def _gallery_html(g: dict[str, list[dict]]) -> str:
+    parts = []
+    for kind, label in (
+        ("escape", "Escapes: defective parts that passed (lowest scores first)"),
+        ("false_reject", "False rejects: good parts that were flagged (highest scores first)"),
+    ):
+        parts.append(f"<h3>{label}</h3>")
+        if not g[kind]:
+            parts.append("<p>None.</p>")
+        for it in g[kind]:
+            imgs = "".join(f'<img src="{_e(it[k])}" alt="{k}">' for k in ("image", "overlay", "mask") if k in it)
+            cap = f"{_e(Path(it['path']).name)} — {_e(it['class'])}, score {it['score']:.4g}"
+            parts.append(f'<figure title="{_e(it["path"])}">{imgs}<figcaption>{cap}</figcaption></figure>')
+    return "\n".join(parts)
+
+
+def write_report(
+    out_dir: Path, holdout: HoldoutResult, choice: ThresholdChoice, *, title: str, model_info: dict
+) -> Path:
+    """Writes out_dir/index.html with its PNG plots and gallery beside it; returns the page's path. Scores:
+    higher = less like known-good; flagged when score > choice.value."""
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    m = metrics_summary(holdout, choice)
+    y, s, t = np.asarray(holdout.labels), np.asarray(holdout.scores, dtype=np.float64), float(choice.value)
+    cells = [[int(((y == c) & (s <= t)).sum()), int(((y == c) & (s > t)).sum())] for c in (0, 1)]
+    plots = [_plot_hist(out, y, s, t), _plot_confusion(out, cells)]
+    if m["image_auroc"] is not None:
+        plots = [_plot_roc(out, y, s, m["false_reject"], m["catch"]), _plot_pr(out, y, s, t), *plots]
+    if m["per_class_catch"]:
+        plots.append(_plot_per_class(out, m["per_class_catch"]))
+    per_class = "".join(
+        f"<tr><th>{_e(c)}</th><td>{r['n']}</td><td>{_e(_rate_text(r))}</td></tr>"
+        for c, r in m["per_class_catch"].items()
+    )
+    body = [
+        f"<h1>{_e(title)}</h1>",
+        f'<p class="caution"><strong>Caution.</strong> {_e(CAUTION)}</p>',
+        "<p>Anomaly score: higher means less like the known-good parts. A part is <b>flagged</b> when its score is "
+        "above the threshold, otherwise it <b>passes</b>. Intervals are 95 % Clopper–Pearson.</p>",
+        "<h2>Summary</h2>",
+        _headline(m),
+        f"<p>{_e(choice.note)}</p>" if choice.note else "",
+        "<h2>Confusion matrix</h2>",
+        _confusion_table(m, cells),
+        "<h2>Catch rate per defect class</h2>",
+        f"<table><tr><th>class</th><th>n</th><th>catch rate</th></tr>{per_class}</table>" if per_class else "",
+        "<h2>Plots</h2>",
+        '<div class="plots">' + "".join(f'<img src="{p}" alt="{p}">' for p in plots) + "</div>",
+        "<h2>Worst misses</h2>",
+        _gallery_html(_gallery(out, holdout, t)),
+        "<h2>Model</h2>",
+        f"<table>{_rows(model_info.items())}</table>",
+    ]
+    page = out / "index.html"
+    page.write_text(
+        f'<!doctype html><html lang="en"><head><meta charset="utf-8"><title>{_e(title)}</title>'
+        f"<style>{_CSS}</style></head><body>\n" + "\n".join(body) + "\n</body></html>\n",
+        encoding="utf-8",
+    )
+    return page
