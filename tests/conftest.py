@@ -38,8 +38,12 @@ def tiny_bundle(tmp_path_factory, tiny_good_images) -> Path:
     graph = bundle.new_graph(cfg)
     x = torch.from_numpy(np.stack(tiny_good_images))
     graph.fit_standardisation(x)
-    det = Detector(cfg=cfg, graph=graph, threshold=3.0,
-                   manifest={"model": {**cfg.__dict__}, "threshold": {"method": "fixed", "value": 3.0}})
+    det = Detector(
+        cfg=cfg,
+        graph=graph,
+        threshold=3.0,
+        manifest={"model": {**cfg.__dict__}, "threshold": {"method": "fixed", "value": 3.0}},
+    )
     feats = det.embed(x)
     frechet = {"train_mu": feats.mean(0), "train_sigma": np.cov(feats, rowvar=False), "holdout_features": feats}
     path = tmp_path_factory.mktemp("bundle") / "tiny.kgm"

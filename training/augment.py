@@ -19,8 +19,9 @@ def random_patches(x: torch.Tensor, n: int, patch: int, gen: torch.Generator) ->
     return torch.stack([x[i, :, y : y + patch, c : c + patch] for i, y, c in zip(idx, ys, xs)])
 
 
-def process_variation(x: torch.Tensor, gen: torch.Generator, *, shift: float = 0.03, degrees: float = 3.0,
-                      brightness: float = 0.05) -> torch.Tensor:
+def process_variation(
+    x: torch.Tensor, gen: torch.Generator, *, shift: float = 0.03, degrees: float = 3.0, brightness: float = 0.05
+) -> torch.Tensor:
     """Small shifts (share of the side), rotations and brightness/contrast changes, per image.
 
     These are what a fixture, a lamp or a material lot change; defects are local, so none of this makes one.

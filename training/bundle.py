@@ -46,8 +46,10 @@ def to_bytes(detector: Detector, frechet: dict[str, np.ndarray]) -> bytes:
     manifest["weights"] = {k: list(v.shape) for k, v in sorted(tensors.items())}
     buf = io.BytesIO()
     with zipfile.ZipFile(buf, "w", zipfile.ZIP_DEFLATED) as zf:
-        for name, data in (("manifest.json", json.dumps(manifest, indent=2, sort_keys=True).encode()),
-                           ("weights.safetensors", weights)):
+        for name, data in (
+            ("manifest.json", json.dumps(manifest, indent=2, sort_keys=True).encode()),
+            ("weights.safetensors", weights),
+        ):
             zf.writestr(zipfile.ZipInfo(name, date_time=_ZIP_TIME), data, compress_type=zipfile.ZIP_DEFLATED)
     return buf.getvalue()
 
@@ -89,8 +91,9 @@ def from_bytes(data: bytes, *, name: str = "bundle") -> tuple[Detector, dict[str
     _load_graph(graph, tensors, name)
     frechet = {k.split(".", 1)[1]: v.numpy() for k, v in tensors.items() if k.startswith("frechet.")}
     threshold = float(manifest["threshold"]["value"])
-    det = Detector(cfg=cfg, graph=graph, threshold=threshold, manifest=manifest,
-                   sha256=hashlib.sha256(data).hexdigest())
+    det = Detector(
+        cfg=cfg, graph=graph, threshold=threshold, manifest=manifest, sha256=hashlib.sha256(data).hexdigest()
+    )
     _test_forward(det, name)
     return det, frechet
 

@@ -32,28 +32,52 @@ def train(args) -> int:
     steps = args.steps if args.steps is not None else 10**9
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
     model = ModelConfig(size=args.size, channels=good.channels)
-    tcfg = TrainConfig(steps=steps, minutes=minutes or 0.0, seed=args.seed, recipe=args.recipe,
-                       target_false_reject=args.target_false_reject)
+    tcfg = TrainConfig(
+        steps=steps,
+        minutes=minutes or 0.0,
+        seed=args.seed,
+        recipe=args.recipe,
+        target_false_reject=args.target_false_reject,
+    )
     det = train_bundle(good, args.output, model=model, train=tcfg, progress=not args.quiet, resume=not args.fresh)
     t = det.manifest["training"]
-    print(f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
-          f"threshold {det.threshold:.3f} by {det.manifest['threshold']['method']})")
+    print(
+        f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
+        f"threshold {det.threshold:.3f} by {det.manifest['threshold']['method']})"
+    )
     return 0
 
 
 def tune(args) -> int:
     _rate("--target-false-reject", args.target_false_reject)
     _rate("--target-catch", args.target_catch)
-    summary = tune_model(args.model, args.good, args.defective, args.masks, target_catch=args.target_catch,
-                         target_false_reject=args.target_false_reject, report=args.report, output=args.output,
-                         skip_bad=args.skip_bad)
+    summary = tune_model(
+        args.model,
+        args.good,
+        args.defective,
+        args.masks,
+        target_catch=args.target_catch,
+        target_false_reject=args.target_false_reject,
+        report=args.report,
+        output=args.output,
+        skip_bad=args.skip_bad,
+    )
     print(json.dumps(summary, indent=2, default=float))
     return 0
 
 
-def tune_model(model: Path, good: Path, defective: Path, masks: Path | None, *, target_catch: float | None = None,
-               target_false_reject: float | None = None, report: Path | None = None, output: Path | None = None,
-               skip_bad: bool = False) -> dict:
+def tune_model(
+    model: Path,
+    good: Path,
+    defective: Path,
+    masks: Path | None,
+    *,
+    target_catch: float | None = None,
+    target_false_reject: float | None = None,
+    report: Path | None = None,
+    output: Path | None = None,
+    skip_bad: bool = False,
+) -> dict:
     """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves, writes the report."""
     from training.holdout import load_holdout  # matplotlib comes with the report: keep `inspect` light
     from training.report import metrics_summary, write_report
@@ -76,8 +100,13 @@ def tune_model(model: Path, good: Path, defective: Path, masks: Path | None, *, 
     bundle.save(tuned, frechet, out)
     summary = metrics_summary(holdout, choice)
     if report is not None:
-        page = write_report(report, holdout, choice, title=f"knowngood report: {Path(model).name}",
-                            model_info={"model_id": tuned.model_id, "bundle": str(out)})
+        page = write_report(
+            report,
+            holdout,
+            choice,
+            title=f"knowngood report: {Path(model).name}",
+            model_info={"model_id": tuned.model_id, "bundle": str(out)},
+        )
         summary["report"] = str(page)
     summary["bundle"] = str(out)
     return summary
@@ -131,8 +160,16 @@ def inspect(args) -> int:
 
 def _emit(args, path: Path, img: np.ndarray, res) -> None:
     if args.json:
-        print(json.dumps({"image": str(path), "score": round(res.score, 6), "threshold": round(res.threshold, 6),
-                          "verdict": res.verdict}))
+        print(
+            json.dumps(
+                {
+                    "image": str(path),
+                    "score": round(res.score, 6),
+                    "threshold": round(res.threshold, 6),
+                    "verdict": res.verdict,
+                }
+            )
+        )
     else:
         print(f"{res.verdict:4}  {res.score:8.3f}  (threshold {res.threshold:.3f})  {path}")
     if args.heatmaps is not None:

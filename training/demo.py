@@ -30,12 +30,20 @@ def run_demo(out: Path, *, steps: int | None = None, minutes: float | None = Non
         print(f"\n[{kind}] training on {len(good.images)} known-good images ...", flush=True)
         tcfg = TrainConfig(steps=steps or DEMO_STEPS, minutes=DEMO_MINUTES if minutes is None else minutes, seed=seed)
         train_bundle(good, model_path, model=ModelConfig(channels=good.channels), train=tcfg)
-        summary = tune_model(model_path, root / "holdout" / "good", root / "holdout" / "defective",
-                             root / "holdout" / "masks", target_false_reject=DEMO_TARGET_FALSE_REJECT,
-                             report=out / "reports" / kind)
+        summary = tune_model(
+            model_path,
+            root / "holdout" / "good",
+            root / "holdout" / "defective",
+            root / "holdout" / "masks",
+            target_false_reject=DEMO_TARGET_FALSE_REJECT,
+            report=out / "reports" / kind,
+        )
         results[kind] = summary
-        print(f"[{kind}] image AUROC {summary['image_auroc']:.3f}  pixel AUROC {summary.get('pixel_auroc', 0):.3f}  "
-              f"report {summary['report']}", flush=True)
+        print(
+            f"[{kind}] image AUROC {summary['image_auroc']:.3f}  pixel AUROC {summary.get('pixel_auroc', 0):.3f}  "
+            f"report {summary['report']}",
+            flush=True,
+        )
     results["seconds"] = round(time.monotonic() - t0, 1)
     (out / "summary.json").write_text(json.dumps(results, indent=2, default=float))
     print(f"\ndone in {results['seconds']:.0f} s. Reports: " + ", ".join(results[k]["report"] for k in PART_KINDS))

@@ -51,8 +51,9 @@ def izi_f_loss(critic: Critic, x: torch.Tensor, recon: torch.Tensor, kappa: floa
 
 
 class Fitter:
-    def __init__(self, train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig,
-                 device: str = "cpu"):
+    def __init__(
+        self, train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig, device: str = "cpu"
+    ):
         torch.manual_seed(tcfg.seed)
         self.train_x, self.val_x, self.mcfg, self.tcfg = train_x, val_x, mcfg, tcfg
         self.device = torch.device(device)
@@ -155,8 +156,16 @@ def default_device() -> str:
     return "cuda" if torch.cuda.is_available() else "cpu"
 
 
-def fit(train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig, *,
-        checkpoint: Path | None = None, progress: bool = True, device: str | None = None) -> FitResult:
+def fit(
+    train_x: torch.Tensor,
+    val_x: torch.Tensor,
+    mcfg: ModelConfig,
+    tcfg: TrainConfig,
+    *,
+    checkpoint: Path | None = None,
+    progress: bool = True,
+    device: str | None = None,
+) -> FitResult:
     """Trains on train_x (N, C, S, S); val_x are held-out known-good images. Stops after `tcfg.steps` steps, or
     at `tcfg.minutes` if that comes first (then the work, and so the bundle, depends on the machine's speed).
     The returned nets are on the CPU in eval mode."""

@@ -42,14 +42,17 @@ def sample_distance(a: np.ndarray, b: np.ndarray) -> float:
     return frechet_distance(*gaussian_stats(a), *gaussian_stats(b))
 
 
-def reference_distance(good: np.ndarray, n: int, *, mu: np.ndarray, sigma: np.ndarray,
-                       repeats: int = 8, seed: int = 0) -> tuple[float, float]:
+def reference_distance(
+    good: np.ndarray, n: int, *, mu: np.ndarray, sigma: np.ndarray, repeats: int = 8, seed: int = 0
+) -> tuple[float, float]:
     """What a sample of n known-good images scores against the reference (mu, sigma): mean and std over
     `repeats` random subsets of `good` (N, F). A production window of n images drifts when it clearly
     exceeds this, whatever n is."""
     good = np.asarray(good, np.float64)
     n = min(n, len(good))
     rng = np.random.default_rng(seed)
-    d = [frechet_distance(*gaussian_stats(good[rng.choice(len(good), n, replace=False)]), mu, sigma)
-         for _ in range(repeats)]
+    d = [
+        frechet_distance(*gaussian_stats(good[rng.choice(len(good), n, replace=False)]), mu, sigma)
+        for _ in range(repeats)
+    ]
     return float(np.mean(d)), float(np.std(d))

@@ -29,8 +29,9 @@ def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.nda
     return None
 
 
-def load_holdout(det: Detector, good_dir: Path, defective_dir: Path, masks_dir: Path | None = None,
-                 *, skip_bad: bool = False) -> HoldoutResult:
+def load_holdout(
+    det: Detector, good_dir: Path, defective_dir: Path, masks_dir: Path | None = None, *, skip_bad: bool = False
+) -> HoldoutResult:
     """Reads and scores the whole holdout as batches. Labels: 0 good, 1 defective."""
     good = load_folder(good_dir, skip_bad=skip_bad)
     bad = load_folder(defective_dir, skip_bad=skip_bad)

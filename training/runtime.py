@@ -20,10 +20,14 @@ def export_onnx(graph: ScoringGraph) -> bytes:
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the exporter's notes on shape inference are not for the user
         torch.onnx.export(
-            graph, (torch.rand(1, graph.cfg.channels, s, s),), buf,
-            input_names=["x"], output_names=["score", "heat"],
+            graph,
+            (torch.rand(1, graph.cfg.channels, s, s),),
+            buf,
+            input_names=["x"],
+            output_names=["score", "heat"],
             dynamic_axes={"x": {0: "batch"}, "score": {0: "batch"}, "heat": {0: "batch"}},
-            opset_version=17, dynamo=False,
+            opset_version=17,
+            dynamo=False,
         )
     return buf.getvalue()
 

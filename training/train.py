@@ -25,8 +25,9 @@ SCORE_DEFINITION = (
 )
 
 
-def train_bundle(good: ImageSet, out: Path, *, model: ModelConfig, train: TrainConfig,
-                 progress: bool = True, resume: bool = True) -> Detector:
+def train_bundle(
+    good: ImageSet, out: Path, *, model: ModelConfig, train: TrainConfig, progress: bool = True, resume: bool = True
+) -> Detector:
     """Trains on `good`, keeps `train.holdout_share` of it out for standardisation and the conformal threshold,
     and writes the bundle to `out`. A checkpoint beside `out` lets an interrupted run resume."""
     if len(good.images) < MIN_IMAGES:
@@ -65,8 +66,12 @@ def _manifest(good, model, train, result, choice, n_fit, n_std, n_cal) -> dict:
             "range": [0.0, 1.0],
         },
         "model": to_dict(model),
-        "score": {"definition": SCORE_DEFINITION, "kappa": model.kappa, "unit": "held-out known-good std",
-                  "direction": "higher = less like known-good; flagged when score > threshold"},
+        "score": {
+            "definition": SCORE_DEFINITION,
+            "kappa": model.kappa,
+            "unit": "held-out known-good std",
+            "direction": "higher = less like known-good; flagged when score > threshold",
+        },
         "training": {
             "config": to_dict(train),
             "steps_done": result.steps_done,
@@ -76,8 +81,10 @@ def _manifest(good, model, train, result, choice, n_fit, n_std, n_cal) -> dict:
             "history": result.history,
             "images": {"fit": n_fit, "standardise": n_std, "calibrate": n_cal, "skipped": len(good.skipped)},
         },
-        "threshold": {**choice.to_dict(), "set_by": "train", "set_at": dt.datetime.now(dt.timezone.utc).isoformat(
-            timespec="seconds")},
+        "threshold": {
+            **choice.to_dict(),
+            "set_by": "train",
+            "set_at": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
+        },
         "fingerprints": {"training": good.fingerprint(), "holdout": None},
     }
-

@@ -25,8 +25,9 @@ def scenario(tmp_path_factory):
 @pytest.fixture(scope="module")
 def trained(scenario, tmp_path_factory):
     model = tmp_path_factory.mktemp("model") / "bracket.kgm"
-    code = main(["train", str(scenario / "train" / "good"), "-o", str(model), "--steps", STEPS, "--size", "64",
-                 "--quiet"])
+    code = main(
+        ["train", str(scenario / "train" / "good"), "-o", str(model), "--steps", STEPS, "--size", "64", "--quiet"]
+    )
     assert code == 0
     return model
 
@@ -42,8 +43,10 @@ def test_train_writes_a_self_describing_bundle(trained):
 
 def test_same_seed_data_and_steps_give_the_same_bundle(trained, scenario, tmp_path):
     again = tmp_path / "again.kgm"
-    assert main(["train", str(scenario / "train" / "good"), "-o", str(again), "--steps", STEPS, "--size", "64",
-                 "--quiet"]) == 0
+    assert (
+        main(["train", str(scenario / "train" / "good"), "-o", str(again), "--steps", STEPS, "--size", "64", "--quiet"])
+        == 0
+    )
     a, b = bundle.load(trained)[0], bundle.load(again)[0]
     assert a.model_id == b.model_id  # the id is the SHA-256 of the weights
     assert a.threshold == b.threshold
@@ -52,8 +55,24 @@ def test_same_seed_data_and_steps_give_the_same_bundle(trained, scenario, tmp_pa
 def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, capsys):
     out, report = tmp_path / "tuned.kgm", tmp_path / "report"
     h = scenario / "holdout"
-    code = main(["tune", str(trained), "--good", str(h / "good"), "--defective", str(h / "defective"),
-                 "--masks", str(h / "masks"), "--target-catch", "0.5", "--report", str(report), "-o", str(out)])
+    code = main(
+        [
+            "tune",
+            str(trained),
+            "--good",
+            str(h / "good"),
+            "--defective",
+            str(h / "defective"),
+            "--masks",
+            str(h / "masks"),
+            "--target-catch",
+            "0.5",
+            "--report",
+            str(report),
+            "-o",
+            str(out),
+        ]
+    )
     assert code == 0
     summary = json.loads(capsys.readouterr().out)
     det = bundle.load(out)[0]
@@ -101,5 +120,7 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
         assert proc.returncode == 2, proc.stderr
         lines = proc.stderr.strip().splitlines()
         assert len(lines) == 1 and lines[0].startswith("knowngood: error:") and "Traceback" not in proc.stderr
-    assert "broken.png" in subprocess.run([sys.executable, "-m", "training.cli", *cases[0]], capture_output=True,
-                                          text=True).stderr
+    assert (
+        "broken.png"
+        in subprocess.run([sys.executable, "-m", "training.cli", *cases[0]], capture_output=True, text=True).stderr
+    )
