@@ -20,7 +20,7 @@ import torch
 from tests.bench import datasets, memory, quality, speed
 from training import bundle
 
-QUICK_DATASETS = ("elpv-pooled", "demo-bracket")
+QUICK_DATASETS = ("elpv-mono", "demo-bracket")
 
 
 def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
@@ -91,8 +91,11 @@ def write(result: dict, out: Path) -> None:
     os.replace(tmp, out)
 
 
+_START = time.monotonic()
+
+
 def log(msg: str) -> None:
-    print(msg, flush=True)
+    print(f"{time.monotonic() - _START:6.0f} s  {msg}", flush=True)
 
 
 def run_quality(args, result: dict) -> dict[str, Path]:

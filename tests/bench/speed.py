@@ -17,7 +17,8 @@ THREADS = 2
 BATCHES = (1, 32)
 
 
-def median_ms(fn, repeats: int, warmup: int = 2) -> float:
+def median_ms(fn, repeats: int, warmup: int = 5) -> float:
+    # the first calls at a new batch shape are slow (kernel selection and allocation); warm up past them
     for _ in range(warmup):
         fn()
     times = []

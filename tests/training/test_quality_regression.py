@@ -22,8 +22,11 @@ pytest.importorskip("elpv_dataset")  # a test extra; the data comes with the pac
 
 STEPS = 100
 N_TRAIN, N_TEST = 150, 60
-# Measured with STEPS = 100 on this split (2 CPU threads, torch 2.14): knowngood 0.788; nearest neighbour 0.734,
-# PCA 0.699, mean grey level 0.746. The floor leaves room for float differences between CPUs and libraries.
+# Measured on this split (2 CPU threads, torch 2.14.1, 35-50 s of training): knowngood 0.788 at seed 0 (the seed
+# used here; bit-for-bit repeatable on one machine); peers: nearest neighbour 0.734, PCA 0.699, mean grey level
+# 0.746. Other seeds at 100 steps gave 0.801 (1), 0.615 (2), 0.751 (3); seed 0 at 300 / 500 steps 0.725 / 0.619.
+# So this pins the outcome of one recipe and seed, a regression check, not a claim about knowngood in general.
+# The floor leaves room for float differences between CPUs and libraries.
 FLOOR = 0.72
 
 
