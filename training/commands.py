@@ -12,7 +12,7 @@ import numpy as np
 
 from training import bundle
 from training.config import ModelConfig, TrainConfig
-from training.data import list_images, load_folder, read_image
+from training.data import fingerprint, list_images, load_folder, read_image
 from training.errors import BadConfig, BadDataset, BadImage
 from training.heatmap import heatmap_png_bytes
 from training.train import train_bundle
@@ -94,7 +94,7 @@ def tune_model(
     now = dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")
     manifest = dict(det.manifest)
     manifest["threshold"] = {**choice.to_dict(), "set_by": "tune", "set_at": now}
-    manifest["fingerprints"] = {**manifest.get("fingerprints", {}), "holdout": _fingerprint(holdout.paths)}
+    manifest["fingerprints"] = {**manifest.get("fingerprints", {}), "holdout": fingerprint(holdout.paths)}
     tuned = dataclasses.replace(det, threshold=float(choice.value), manifest=manifest)
     out = output or model
     bundle.save(tuned, frechet, out)
@@ -110,16 +110,6 @@ def tune_model(
         summary["report"] = str(page)
     summary["bundle"] = str(out)
     return summary
-
-
-def _fingerprint(paths: list[Path]) -> str:
-    import hashlib
-
-    h = hashlib.sha256()
-    for p in sorted(paths):
-        h.update(p.name.encode())
-        h.update(hashlib.sha256(p.read_bytes()).digest())
-    return h.hexdigest()
 
 
 def _expand(paths: list[Path]) -> list[Path]:

@@ -165,12 +165,16 @@ class ImageSet:
         return 3 if any(im.shape[0] == 3 for im in self.images) else 1
 
     def fingerprint(self) -> str:
-        """SHA-256 over the sorted file names and contents: identifies the exact set in a bundle."""
-        h = hashlib.sha256()
-        for p in sorted(self.paths, key=lambda q: q.name):
-            h.update(p.name.encode())
-            h.update(hashlib.sha256(p.read_bytes()).digest())
-        return h.hexdigest()
+        return fingerprint(self.paths)
+
+
+def fingerprint(paths: list[Path]) -> str:
+    """SHA-256 over the sorted file names and contents: identifies the exact image set in a bundle."""
+    h = hashlib.sha256()
+    for p in sorted(paths, key=lambda q: q.name):
+        h.update(p.name.encode())
+        h.update(hashlib.sha256(p.read_bytes()).digest())
+    return h.hexdigest()
 
 
 def load_folder(folder: Path, *, skip_bad: bool = False, min_count: int = 1) -> ImageSet:
