@@ -44,11 +44,12 @@ def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
             "--fresh",
         ]
         start = time.monotonic()
-        proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-        _, status, usage = os.wait4(proc.pid, 0)
-        proc.returncode = os.waitstatus_to_exitcode(status)
-        err = proc.stderr.read().decode(errors="replace")[-2000:]
-        proc.stderr.close()
+        with open(Path(tmp) / "stderr.txt", "w+b") as err_file:  # a file, not a pipe: a chatty child cannot block
+            proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=err_file)
+            _, status, usage = os.wait4(proc.pid, 0)
+            proc.returncode = os.waitstatus_to_exitcode(status)
+            err_file.seek(0)
+            err = err_file.read().decode(errors="replace")[-2000:]
     out = {
         "command": f"knowngood train GOOD_DIR -o MODEL --steps {steps} --quiet --fresh",
         "images": len(images),

@@ -130,8 +130,9 @@ class ConvAutoEncoder(nn.Module):
 class AutoEncoderPeer:
     """`ConvAutoEncoder` trained with MSE (Adam) for a fixed CPU time budget, the same as knowngood's training
     time on that dataset, on the same kind of batches (32 random 64 px crops; the nets are fully convolutional,
-    and whole images would give it a quarter of the steps). No augmentation. Map = |x - x̂| averaged over channels and Gaussian-smoothed; score = mean of its top
-    1 % (knowngood's aggregation, so the comparison is about the reconstruction, not the pooling)."""
+    and whole images would give it a quarter of the steps). No augmentation. Map = |x - x̂| averaged over
+    channels and Gaussian-smoothed; score = mean of its top 1 % (knowngood's aggregation, so the comparison is
+    about the reconstruction, not the pooling)."""
 
     name = "autoencoder"
 
