@@ -7,6 +7,7 @@ before `compose`, so a defective image equals the good image of the same rng sta
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -17,6 +18,7 @@ from demo_parts import fields as f
 HALF_W, HALF_H, CORNER = 0.40, 0.28, 0.07
 HOLE_AT, HOLE_R = (0.25, 0.155), 0.045
 SLOT_HALF_LEN, SLOT_R = 0.09, 0.035
+FIXTURE_SEED = 7  # the station's one fixture plate: the same background texture in every image
 
 
 @dataclass
@@ -52,7 +54,7 @@ def sample(rng: np.random.Generator, size: int) -> BracketScene:
     angle = np.deg2rad(rng.uniform(-4.0, 4.0))
     x, y = f.pixel_grid(size)
     u, v = f.to_local(x, y, cx, cy, angle)
-    light_angle = np.deg2rad(-130.0 + rng.normal(0.0, 6.0))
+    light_angle = np.deg2rad(-130.0 + rng.normal(0.0, 3.0))  # the lamp is mounted; it sags a little
     light = np.array([np.cos(light_angle), np.sin(light_angle)])
     tol = 1.0 + rng.normal(0.0, 0.004, 2)  # stamping tolerance, far below what should count as a defect
     scene = BracketScene(
@@ -91,8 +93,8 @@ def _surface(rng, x, y, v, light, size: int) -> np.ndarray:
     """Metal brightness: a lamp gradient times brushing streaks that run along the plate's long axis."""
     s = size / 128.0
     level = rng.uniform(0.56, 0.68)
-    tilt = rng.uniform(0.04, 0.2)
-    toward = light + rng.normal(0.0, 0.25, 2)
+    tilt = rng.uniform(0.04, 0.08)  # fall-off across the part; varies with where the part sits
+    toward = light + rng.normal(0.0, 0.1, 2)
     toward /= np.linalg.norm(toward)
     ramp = ((x - size / 2) * toward[0] + (y - size / 2) * toward[1]) / size
     streaks = f.smooth_noise(rng, (4 * size,), 0.7 * s)
@@ -103,8 +105,16 @@ def _surface(rng, x, y, v, light, size: int) -> np.ndarray:
 
 
 def _background(rng, size: int) -> np.ndarray:
-    level = rng.uniform(0.07, 0.11)
-    return level * (1.0 + 0.15 * f.smooth_noise(rng, (size, size), 6.0 * size / 128.0))
+    """The fixture nest: the same worn plate under every part, only its exposure varies a little."""
+    level = rng.uniform(0.08, 0.10)
+    return level * (1.0 + 0.15 * _fixture_texture(size))
+
+
+@functools.lru_cache(maxsize=4)
+def _fixture_texture(size: int) -> np.ndarray:
+    texture = f.smooth_noise(np.random.default_rng(FIXTURE_SEED), (size, size), 6.0 * size / 128.0)
+    texture.setflags(write=False)
+    return texture
 
 
 def outer_sd(scene: BracketScene) -> np.ndarray:

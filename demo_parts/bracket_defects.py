@@ -1,7 +1,9 @@
 """Defects of the `bracket`. Each edits a freshly sampled scene in place and returns its bool mask.
 
 Defect parameters are drawn after the scene, so the scene (and the good image) is unchanged by them.
-Strength ranges start low on purpose: the weakest draws are meant to be hard, the strongest obvious.
+Strength ranges start low on purpose: the weakest draws are meant to be hard, the strongest obvious. The lower
+ends are set so that the weakest draw is still visible to a person at the 128 px the demo renders at (a pit of
+under 2 px or a scratch of 7 % contrast is below what that resolution can show, on a camera or to a model).
 """
 
 from __future__ import annotations
@@ -35,7 +37,7 @@ def scratch(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
         if mask.sum() >= 6 * s:
             break
     sign = 1.0 if rng.random() < 0.65 else -1.0
-    scene.surface_delta += sign * rng.uniform(0.07, 0.26) * alpha
+    scene.surface_delta += sign * rng.uniform(0.12, 0.3) * alpha
     return mask
 
 
@@ -48,7 +50,7 @@ def _scratch_alpha(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     end = start + length * heading
     bend = rng.normal(0.0, 0.12) * length * np.array([-heading[1], heading[0]])
     d, t = f.dist_to_polyline(scene.x, scene.y, f.bezier(start, (start + end) / 2 + bend, end))
-    width = rng.uniform(1.0, 2.0) * s
+    width = rng.uniform(1.2, 2.2) * s
     taper = 0.45 + 0.55 * np.sqrt(np.sin(np.pi * t))  # scratches thin out where the tool lifted
     return np.clip(width / 2 + 0.5 - d, 0.0, 1.0) * taper
 
@@ -57,8 +59,8 @@ def pit(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     """A small crater: dark floor, and a bright wall on the side that faces the lamp."""
     s = scene.scale
     x0, y0 = surface_point(scene, rng, 4.0 * s)
-    r = rng.uniform(1.2, 3.0) * s
-    depth = rng.uniform(0.12, 0.4)
+    r = rng.uniform(1.8, 3.5) * s
+    depth = rng.uniform(0.2, 0.45)
     dx, dy = scene.x - x0, scene.y - y0
     d = np.hypot(dx, dy)
     core = np.exp(-((d / r) ** 2))
@@ -112,11 +114,11 @@ def stain(scene: BracketScene, rng: np.random.Generator) -> np.ndarray:
     """A dried coolant spot: a soft dark blotch with a slightly darker tide mark at its edge."""
     s = scene.scale
     x0, y0 = surface_point(scene, rng, 3.0 * s)
-    radius = rng.uniform(3.0, 10.0) * s
+    radius = rng.uniform(4.0, 11.0) * s
     sd = f.sd_blob(scene.x, scene.y, x0, y0, radius, f.blob_coeffs(rng))
     alpha = ndimage.gaussian_filter(f.coverage(sd), 0.8 * s)
     tide = np.exp(-(((sd + 0.8 * s) / (0.9 * s)) ** 2)) * alpha
-    strength = rng.uniform(0.07, 0.3)
+    strength = rng.uniform(0.12, 0.32)
     scene.surface_gain *= 1.0 - strength * alpha - 0.4 * strength * tide
     return (alpha > 0.3) & surface_mask(scene)
 

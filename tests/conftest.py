@@ -11,6 +11,7 @@ import torch
 from training import bundle
 from training.config import ModelConfig
 from training.detector import Detector
+from training.perceptual import load_pretrained
 
 
 def _tiny_good_images(n: int, size: int, seed: int = 0) -> list[np.ndarray]:
@@ -32,11 +33,14 @@ def tiny_good_images() -> list[np.ndarray]:
 
 @pytest.fixture(scope="session")
 def tiny_bundle(tmp_path_factory, tiny_good_images) -> Path:
-    """A 32 px grayscale bundle with untrained weights, standardised on the tiny good images; loads in ms."""
+    """A 32 px grayscale bundle: untrained GAN weights, the pretrained perceptual net, standardised on the tiny
+    good images; loads in ms."""
+    perceptual = load_pretrained()  # before seeding: the GAN weights below are the same with or without it
     torch.manual_seed(0)
     cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4)
-    graph = bundle.new_graph(cfg)
+    graph = bundle.new_graph(cfg, perceptual)
     x = torch.from_numpy(np.stack(tiny_good_images))
+    graph.fit_features(x)
     graph.fit_standardisation(x)
     det = Detector(
         cfg=cfg,

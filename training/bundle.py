@@ -22,16 +22,20 @@ from training.config import ModelConfig, from_dict
 from training.detector import Detector
 from training.errors import BadBundle, BadConfig
 from training.nets import build
+from training.perceptual import PerceptualNet
 from training.scoring import ScoringGraph
 
 FORMAT = "knowngood-bundle"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2  # 2: the perceptual term (graph.perceptual.*, graph.feature_*); 1 had none
 _ZIP_TIME = (2020, 1, 1, 0, 0, 0)  # fixed entry times: same content -> same bytes
 MAX_BUNDLE_BYTES = 512 * 1024 * 1024
 
 
-def new_graph(cfg: ModelConfig) -> ScoringGraph:
-    return ScoringGraph(cfg, *build(cfg))
+def new_graph(cfg: ModelConfig, perceptual: PerceptualNet | None = None) -> ScoringGraph:
+    """A scoring graph for cfg; without `perceptual`, an uninitialised one when cfg asks for the term."""
+    if perceptual is None and cfg.perceptual > 0:
+        perceptual = PerceptualNet()
+    return ScoringGraph(cfg, *build(cfg), perceptual=perceptual)
 
 
 def to_bytes(detector: Detector, frechet: dict[str, np.ndarray]) -> bytes:
@@ -79,8 +83,11 @@ def from_bytes(data: bytes, *, name: str = "bundle") -> tuple[Detector, dict[str
         raise BadBundle(f"{name}: {len(data)} bytes is over the {MAX_BUNDLE_BYTES}-byte limit")
     manifest, weights = _read_zip(data, name)
     _check_manifest(manifest, name)
+    model = dict(manifest["model"])
+    if manifest["format_version"] < 2:
+        model.setdefault("perceptual", 0.0)  # format 1 predates the perceptual term
     try:
-        cfg = from_dict(ModelConfig, manifest["model"])
+        cfg = from_dict(ModelConfig, model)
     except (BadConfig, TypeError) as exc:
         raise BadBundle(f"{name}: model settings are invalid ({exc})") from None
     try:

@@ -18,14 +18,20 @@ class ModelConfig:
     z_channels: int = 8  # latent channels; the latent is spatial, size / 8 on a side
     feature_layer: int = 2  # critic block whose output is f(x) for the feature residual
     kappa: float = 1.0  # weight of the critic-feature residual in the anomaly map
+    perceptual: float = 1.0  # weight of the pretrained perceptual term (0 = GAN terms only); see perceptual.py
+    perceptual_shift: int = 1  # positions (of 4 px) a feature may move and still match known-good (fixture jitter)
     smooth_sigma: float = 2.0  # Gaussian smoothing of the anomaly map, in working-resolution pixels
-    top_fraction: float = 0.01  # image score = mean of the top fraction of the standardised map
+    top_fraction: float = 0.003  # image score = mean of the top fraction of the heatmap (0.3 %: ~50 px at 128)
 
     def __post_init__(self) -> None:
         if self.size % 16 or self.size < 32:
             raise BadConfig(f"size must be a multiple of 16 and at least 32, got {self.size}")
         if self.channels not in (1, 3):
             raise BadConfig(f"channels must be 1 or 3, got {self.channels}")
+        if self.kappa < 0 or self.perceptual < 0:
+            raise BadConfig(f"kappa and perceptual must be non-negative, got {self.kappa}, {self.perceptual}")
+        if not 0 <= self.perceptual_shift <= 3:
+            raise BadConfig(f"perceptual_shift must be 0 to 3, got {self.perceptual_shift}")
         if not 0 < self.top_fraction <= 1:
             raise BadConfig(f"top_fraction must be in (0, 1], got {self.top_fraction}")
 

@@ -16,6 +16,7 @@ from torch import nn
 
 from training.config import ModelConfig
 from training.nets import Critic, Encoder, Generator
+from training.perceptual import PerceptualNet
 
 SHRINK_PRIOR = 10.0  # pseudo-images of the global variance mixed into each pixel's variance (small holdouts)
 MIN_STD = 1e-4
@@ -29,20 +30,49 @@ def gaussian_kernel(sigma: float) -> torch.Tensor:
     return k / k.sum()
 
 
+def _shrunk_std(samples: torch.Tensor) -> torch.Tensor:
+    """Per-position std over samples (N, T, H, W) -> (T, H, W), each position's variance shrunk towards the
+    map-wide variance of its channel, so a small holdout gives stable values."""
+    n = samples.shape[0]
+    var = samples.var(0, unbiased=n > 1) if n > 1 else torch.zeros_like(samples[0])
+    global_var = var.mean(dim=(1, 2), keepdim=True)
+    return ((n * var + SHRINK_PRIOR * global_var) / (n + SHRINK_PRIOR)).sqrt().clamp(min=MIN_STD)
+
+
 class ScoringGraph(nn.Module):
     """The whole inference path as one module (exportable to ONNX): x (B, C, S, S) in [0, 1] ->
     term maps, standardised heatmap (B, S, S) and anomaly score (B,), higher = less like known-good.
+
+    Terms: (0) image residual, (1) critic-feature residual, (2) when `perceptual` is given, the perceptual
+    term: how far the pretrained features of x lie from those of known-good images at the same place. Each is
+    standardised per pixel; the heatmap is their weighted maximum (weights 1, kappa, perceptual), because the
+    terms see different defects (the GAN terms texture flaws, the perceptual term shape and shading ones) and
+    a sum dilutes whichever one alone sees the defect (measured: README, "The method").
     """
 
-    def __init__(self, cfg: ModelConfig, encoder: Encoder, generator: Generator, critic: Critic):
+    def __init__(
+        self,
+        cfg: ModelConfig,
+        encoder: Encoder,
+        generator: Generator,
+        critic: Critic,
+        perceptual: PerceptualNet | None = None,
+    ):
         super().__init__()
         self.cfg = cfg
-        self.encoder, self.generator, self.critic = encoder, generator, critic
+        self.encoder, self.generator, self.critic, self.perceptual = encoder, generator, critic, perceptual
         self.register_buffer("kernel", gaussian_kernel(cfg.smooth_sigma), persistent=False)
-        s = cfg.size
-        # per-pixel mean and std of the two smoothed residual terms on held-out known-good images
-        self.register_buffer("term_mean", torch.zeros(2, s, s))
-        self.register_buffer("term_std", torch.ones(2, s, s))
+        weights = [1.0, cfg.kappa] + ([cfg.perceptual] if perceptual is not None else [])
+        self.register_buffer("weights", torch.tensor(weights).view(1, -1, 1, 1), persistent=False)
+        s, n_terms = cfg.size, len(weights)
+        if perceptual is not None:
+            # per-position mean and std of the pretrained features of known-good images, at 1/4 of the side
+            c, side = perceptual.channels, perceptual.side(s)
+            self.register_buffer("feature_mean", torch.zeros(c, side, side))
+            self.register_buffer("feature_std", torch.ones(c, side, side))
+        # per-pixel mean and std of the smoothed term maps on held-out known-good images
+        self.register_buffer("term_mean", torch.zeros(n_terms, s, s))
+        self.register_buffer("term_std", torch.ones(n_terms, s, s))
         self.top_k = max(1, int(round(cfg.top_fraction * s * s)))
 
     def _smooth(self, m: torch.Tensor) -> torch.Tensor:
@@ -55,35 +85,58 @@ class ScoringGraph(nn.Module):
         return m.reshape(b, c, h, w)
 
     def term_maps(self, x: torch.Tensor) -> torch.Tensor:
-        """(B, 2, S, S): smoothed image residual |x - G(E(x))| and critic-feature residual |f(x) - f(G(E(x)))|²."""
+        """(B, T, S, S) smoothed raw terms: |x - G(E(x))|, |f(x) - f(G(E(x)))|² and, with a perceptual net,
+        the mean squared standardised deviation of its features from the known-good ones at each position."""
+        size = x.shape[-2:]
         recon = self.generator(self.encoder(x))  # (B, C, S, S)
         pixel = (x - recon).abs().mean(1, keepdim=True)  # (B, 1, S, S)
         feat = (self.critic.features(x) - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
-        feat = F.interpolate(feat, size=x.shape[-2:], mode="bilinear", align_corners=False)  # (B, 1, S, S)
-        return self._smooth(torch.cat([pixel, feat], 1))
+        terms = [pixel, F.interpolate(feat, size=size, mode="bilinear", align_corners=False)]  # (B, 1, S, S) each
+        if self.perceptual is not None:
+            dev = self._deviation(self.perceptual(x))  # (B, 1, S/4, S/4)
+            terms.append(F.interpolate(dev, size=size, mode="bilinear", align_corners=False))  # (B, 1, S, S)
+        return self._smooth(torch.cat(terms, 1))
+
+    def _deviation(self, feats: torch.Tensor) -> torch.Tensor:
+        """(B, F, h, w) features -> (B, 1, h, w): the mean squared standardised distance to the known-good
+        statistics of the best-matching position within `perceptual_shift` cells, so that the few pixels a
+        part moves in its fixture do not count as a defect at every edge."""
+        r = self.cfg.perceptual_shift
+        h, w = feats.shape[-2:]
+        mean = F.pad(self.feature_mean[None], (r, r, r, r), mode="replicate")[0]  # (F, h + 2r, w + 2r)
+        std = F.pad(self.feature_std[None], (r, r, r, r), mode="replicate")[0]
+        best = None
+        for dy in range(2 * r + 1):
+            for dx in range(2 * r + 1):
+                d = ((feats - mean[:, dy : dy + h, dx : dx + w]) / std[:, dy : dy + h, dx : dx + w]).pow(2)
+                d = d.mean(1, keepdim=True)
+                best = d if best is None else torch.minimum(best, d)
+        return best
 
     def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        z = (self.term_maps(x) - self.term_mean) / self.term_std  # (B, 2, S, S)
-        kappa = self.cfg.kappa
-        heat = ((z[:, 0] + kappa * z[:, 1]) / (1 + kappa)).clamp(min=0)  # (B, S, S)
+        z = (self.term_maps(x) - self.term_mean) / self.term_std  # (B, T, S, S)
+        heat = (z * self.weights).amax(1).clamp(min=0)  # (B, S, S): the strongest evidence at each pixel
         score = heat.flatten(1).topk(self.top_k, dim=1).values.mean(1)  # (B,)
         return score, heat
 
     @torch.no_grad()
-    def fit_standardisation(self, good: torch.Tensor, batch: int = 64) -> None:
-        """Sets the per-pixel statistics from held-out known-good images (N, C, S, S), never training images.
+    def fit_features(self, good: torch.Tensor, batch: int = 64) -> None:
+        """Sets the perceptual term's per-position feature statistics from known-good images (N, C, S, S).
 
-        Each pixel's variance is shrunk towards the map-wide variance so a small holdout gives stable values.
-        """
+        The pretrained net never learns from them, so the training images themselves may be used here."""
+        if self.perceptual is None:
+            return
+        feats = torch.cat([self.perceptual(good[i : i + batch]) for i in range(0, len(good), batch)])
+        self.feature_mean.copy_(feats.mean(0))
+        self.feature_std.copy_(_shrunk_std(feats))
+
+    @torch.no_grad()
+    def fit_standardisation(self, good: torch.Tensor, batch: int = 64) -> None:
+        """Sets the per-pixel statistics from held-out known-good images (N, C, S, S), never training images."""
         self.eval()
         maps = torch.cat([self.term_maps(good[i : i + batch]) for i in range(0, len(good), batch)])
-        n = maps.shape[0]
-        mean = maps.mean(0)
-        var = maps.var(0, unbiased=n > 1) if n > 1 else torch.zeros_like(mean)
-        global_var = var.mean(dim=(1, 2), keepdim=True)
-        shrunk = (n * var + SHRINK_PRIOR * global_var) / (n + SHRINK_PRIOR)
-        self.term_mean.copy_(mean)
-        self.term_std.copy_(shrunk.sqrt().clamp(min=MIN_STD))
+        self.term_mean.copy_(maps.mean(0))
+        self.term_std.copy_(_shrunk_std(maps))
 
 
 def resize_maps(heat: torch.Tensor, sizes: list[tuple[int, int]]) -> list[np.ndarray]:

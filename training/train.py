@@ -14,14 +14,18 @@ from training.detector import Detector
 from training.errors import BadDataset
 from training.fit import fit, split_indices
 from training.frechet import gaussian_stats
+from training.perceptual import load_pretrained
 from training.scoring import ScoringGraph
 from training.tuning import conformal_threshold
 
 MIN_IMAGES = 12
 SCORE_DEFINITION = (
-    "heatmap = max(0, (z_pixel + kappa * z_feature) / (1 + kappa)), where z_* are the smoothed residuals "
-    "|x - G(E(x))| and |f(x) - f(G(E(x)))|^2 standardised per pixel against held-out known-good images; "
-    "score = mean of the top `top_fraction` of the heatmap. Higher = less like known-good; flag when score > threshold."
+    "heatmap = max(0, z_pixel, kappa * z_feature, perceptual * z_perceptual), where z_* are smoothed maps "
+    "standardised per pixel against held-out known-good images: the image residual |x - G(E(x))|, the "
+    "critic-feature residual |f(x) - f(G(E(x)))|^2 and the perceptual term, the mean squared standardised "
+    "deviation of pretrained EfficientNet-Lite0 features of x from those of the known-good images at the "
+    "best-matching nearby position; score = mean of the top `top_fraction` of the heatmap. Higher = less like "
+    "known-good; flag when score > threshold."
 )
 
 
@@ -32,6 +36,7 @@ def train_bundle(
     and writes the bundle to `out`. A checkpoint beside `out` lets an interrupted run resume."""
     if len(good.images) < MIN_IMAGES:
         raise BadDataset(f"need at least {MIN_IMAGES} known-good images to train, got {len(good.images)}")
+    perceptual = load_pretrained() if model.perceptual > 0 else None  # before the fit: fail fast without it
     x = to_model_input(good.images, size=model.size, channels=model.channels)
     fit_idx, std_idx, cal_idx = split_indices(len(x), train.holdout_share, train.seed)
     hold = torch.cat([x[std_idx], x[cal_idx]])
@@ -39,7 +44,8 @@ def train_bundle(
     if not resume and ckpt.exists():
         ckpt.unlink()
     result = fit(x[fit_idx], hold, model, train, checkpoint=ckpt, progress=progress)
-    graph = ScoringGraph(model, result.encoder, result.generator, result.critic)
+    graph = ScoringGraph(model, result.encoder, result.generator, result.critic, perceptual=perceptual)
+    graph.fit_features(x[fit_idx])
     graph.fit_standardisation(x[std_idx])
     det = Detector(cfg=model, graph=graph, threshold=float("inf"))
     cal_scores, _ = det.score_batch(x[cal_idx])
@@ -69,6 +75,7 @@ def _manifest(good, model, train, result, choice, n_fit, n_std, n_cal) -> dict:
         "score": {
             "definition": SCORE_DEFINITION,
             "kappa": model.kappa,
+            "perceptual": model.perceptual,
             "unit": "held-out known-good std",
             "direction": "higher = less like known-good; flagged when score > threshold",
         },

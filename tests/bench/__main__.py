@@ -38,7 +38,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         metavar="NAME",
         help=f"dataset to run (repeatable); one of {', '.join(datasets.NAMES)}",
     )
-    p.add_argument("--minutes", type=float, default=None, help="knowngood training budget per dataset (8; quick 0.5)")
+    p.add_argument("--minutes", type=float, default=None, help="knowngood training budget per dataset (4; quick 0.5)")
     p.add_argument("--cache", type=Path, default=Path("bench_out/cache"), help="where the demo parts are rendered")
     p.add_argument(
         "--skip",
@@ -49,7 +49,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     )
     args = p.parse_args(argv)
     args.names = args.only or (list(QUICK_DATASETS) if args.quick else list(datasets.NAMES))
-    args.minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 8.0)
+    args.minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 4.0)
     args.speed_repeats = 5 if args.quick else 30
     args.memory_steps = 5 if args.quick else 50
     args.service_seconds = 5 if args.quick else 30
@@ -99,12 +99,12 @@ def log(msg: str) -> None:
 
 
 def run_quality(args, result: dict) -> dict[str, Path]:
-    bundles = {}
+    bundles, fitted = {}, {}
     for name in args.names:
         ds = datasets.load(name, args.cache)
         result["datasets"][name] = ds.summary()
         rows, bundles[name] = quality.evaluate(
-            ds, minutes=args.minutes, bundle_dir=args.out.parent / "bundles", log=log
+            ds, minutes=args.minutes, bundle_dir=args.out.parent / "bundles", fitted=fitted, log=log
         )
         result["quality"][name] = rows
         result["best_peers"] = quality.best_peers(result["quality"])

@@ -3,6 +3,7 @@ then score a test set with the loaded `Detector`, exactly as `knowngood inspect`
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import time
 from dataclasses import dataclass
@@ -12,8 +13,10 @@ import numpy as np
 import torch
 
 from training.config import ModelConfig, TrainConfig
-from training.data import ImageSet
+from training.data import ImageSet, to_model_input
 from training.detector import Detector
+from training.fit import split_indices
+from training.scoring import ScoringGraph
 from training.train import train_bundle
 
 SIZE = 128
@@ -65,3 +68,16 @@ def score(det: Detector, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray, float
     scores, heats = det.score_batch(x)
     ms = (time.perf_counter() - start) * 1000 / len(x)
     return scores, heats.numpy(), ms
+
+
+def without_perceptual(det: Detector, images: list[np.ndarray], seed: int = 0) -> Detector:
+    """The same trained generator, encoder and critic scored with the GAN terms only (the ablation the benchmark
+    reports beside knowngood): standardised again on the very held-out images `train_bundle` used."""
+    cfg = dataclasses.replace(det.cfg, perceptual=0.0)
+    g = det.graph
+    graph = ScoringGraph(cfg, g.encoder, g.generator, g.critic)
+    x = to_model_input(images, size=cfg.size, channels=cfg.channels)
+    share = det.manifest["training"]["config"]["holdout_share"]
+    _, std_idx, _ = split_indices(len(x), share, seed)
+    graph.fit_standardisation(x[std_idx])
+    return Detector(cfg=cfg, graph=graph, threshold=det.threshold, manifest=det.manifest)

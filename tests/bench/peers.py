@@ -21,6 +21,7 @@ from sklearn.neighbors import NearestNeighbors
 from torch import nn
 
 from training.augment import random_patches
+from training.config import ModelConfig
 from training.scoring import gaussian_kernel
 
 
@@ -131,8 +132,8 @@ class AutoEncoderPeer:
     """`ConvAutoEncoder` trained with MSE (Adam) for a fixed CPU time budget, the same as knowngood's training
     time on that dataset, on the same kind of batches (32 random 64 px crops; the nets are fully convolutional,
     and whole images would give it a quarter of the steps). No augmentation. Map = |x - x̂| averaged over
-    channels and Gaussian-smoothed; score = mean of its top 1 % (knowngood's aggregation, so the comparison is
-    about the reconstruction, not the pooling)."""
+    channels and Gaussian-smoothed; score = mean of its top `ModelConfig.top_fraction` (knowngood's aggregation,
+    so the comparison is about the reconstruction, not the pooling)."""
 
     name = "autoencoder"
 
@@ -144,7 +145,7 @@ class AutoEncoderPeer:
         patch: int = 64,
         lr: float = 1e-3,
         sigma: float = 2.0,
-        top_fraction: float = 0.01,
+        top_fraction: float = ModelConfig.top_fraction,
         seed: int = 0,
         max_steps: int | None = None,
     ):

@@ -1,5 +1,6 @@
 """The bundle: round trip, and a clear refusal of anything corrupt, truncated, newer or pickled."""
 
+import dataclasses
 import io
 import json
 import pickle
@@ -72,3 +73,21 @@ def test_frechet_arrays_survive(tiny_bundle):
     _, frechet = bundle.load(tiny_bundle)
     assert frechet["train_sigma"].shape == (frechet["train_mu"].shape[0],) * 2
     assert np.isfinite(frechet["holdout_features"]).all()
+
+
+def test_format_1_bundle_without_the_perceptual_term_still_loads(tiny_bundle, tiny_good_images):
+    det, frechet = bundle.load(tiny_bundle)
+    cfg = dataclasses.replace(det.cfg, perceptual=0.0)
+    graph = bundle.new_graph(cfg)
+    graph.fit_standardisation(det.prepare(tiny_good_images))
+    old = dataclasses.replace(det, cfg=cfg, graph=graph)
+
+    def as_format_1(m):
+        m["format_version"] = 1
+        del m["model"]["perceptual"]  # format 1 had no such setting
+
+    loaded, _ = bundle.from_bytes(_rezip(bundle.to_bytes(old, frechet), as_format_1))
+    assert loaded.graph.perceptual is None and loaded.cfg.perceptual == 0.0
+    assert [r.score for r in loaded.inspect(tiny_good_images[:3])] == [
+        r.score for r in old.inspect(tiny_good_images[:3])
+    ]

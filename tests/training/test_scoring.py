@@ -9,16 +9,17 @@ import torch
 from training import bundle
 
 
-def test_score_is_top_fraction_mean_of_the_standardised_heatmap(tiny_bundle, tiny_good_images):
+def test_score_is_top_fraction_mean_of_the_weighted_maximum_of_standardised_terms(tiny_bundle, tiny_good_images):
     # our own invariant, in the spirit of scikit-learn's score_samples == decision_function + offset_ test
     det, _ = bundle.load(tiny_bundle)
     x = det.prepare(tiny_good_images[:5])
     with torch.inference_mode():
         score, heat = det.graph(x)
         z = (det.graph.term_maps(x) - det.graph.term_mean) / det.graph.term_std
-    kappa = det.cfg.kappa
-    expected_heat = ((z[:, 0] + kappa * z[:, 1]) / (1 + kappa)).clamp(min=0)
-    assert torch.allclose(heat, expected_heat)
+    cfg = det.cfg
+    weighted = torch.stack([z[:, 0], cfg.kappa * z[:, 1], cfg.perceptual * z[:, 2]], 1)
+    expected_heat = weighted.max(1).values.clamp(min=0)
+    assert torch.allclose(heat, expected_heat, atol=1e-6)
     k = det.graph.top_k
     assert torch.allclose(score, torch.sort(heat.flatten(1), dim=1, descending=True).values[:, :k].mean(1))
     assert (score >= 0).all() and (heat >= 0).all()  # never negative
