@@ -59,6 +59,7 @@ class ScoringGraph(nn.Module):
         perceptual: PerceptualNet | None = None,
     ):
         super().__init__()
+        assert (perceptual is None) == (cfg.perceptual == 0), "a perceptual net exactly when cfg weights its term"
         self.cfg = cfg
         self.encoder, self.generator, self.critic, self.perceptual = encoder, generator, critic, perceptual
         self.register_buffer("kernel", gaussian_kernel(cfg.smooth_sigma), persistent=False)

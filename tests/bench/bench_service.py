@@ -71,7 +71,7 @@ def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Po
         "-m",
         "training.cli",
         "serve",
-        str(bundle_path),
+        str(Path(bundle_path).resolve()),  # the server runs in `folder`: a relative path would miss
         "--port",
         str(port),
         "--db",

@@ -22,12 +22,13 @@ pytest.importorskip("elpv_dataset")  # a test extra; the data comes with the pac
 
 STEPS = 100
 N_TRAIN, N_TEST = 150, 60
-# Measured on this split (2 CPU threads, torch 2.14.1, 35-50 s of training): knowngood 0.788 at seed 0 (the seed
-# used here; bit-for-bit repeatable on one machine); peers: nearest neighbour 0.734, PCA 0.699, mean grey level
-# 0.746. Other seeds at 100 steps gave 0.801 (1), 0.615 (2), 0.751 (3); seed 0 at 300 / 500 steps 0.725 / 0.619.
-# So this pins the outcome of one recipe and seed, a regression check, not a claim about knowngood in general.
-# The floor leaves room for float differences between CPUs and libraries.
-FLOOR = 0.72
+# Measured on this split (2 CPU threads, torch 2.14.1, about a minute of training): knowngood 0.780 at seed 0 (the
+# seed used here; bit-for-bit repeatable on one machine) and 0.789 at seed 1; the same nets without the perceptual
+# term 0.762 / 0.744; peers: nearest neighbour 0.734, PCA 0.699, mean grey level 0.746. This reduced split mixes
+# mono and poly cells in 150 training images, which is hard for the per-position perceptual statistics (the full
+# benchmark's figures are in the README). So this pins the outcome of one recipe and seed, a regression check,
+# not a claim about knowngood in general. The floor leaves room for float differences between CPUs and libraries.
+FLOOR = 0.75
 
 
 @pytest.fixture(scope="module")
