@@ -70,14 +70,14 @@ def score(det: Detector, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray, float
     return scores, heats.numpy(), ms
 
 
-def without_perceptual(det: Detector, images: list[np.ndarray], seed: int = 0) -> Detector:
+def without_perceptual(det: Detector, images: list[np.ndarray]) -> Detector:
     """The same trained generator, encoder and critic scored with the GAN terms only (the ablation the benchmark
     reports beside knowngood): standardised again on the very held-out images `train_bundle` used."""
     cfg = dataclasses.replace(det.cfg, perceptual=0.0)
     g = det.graph
     graph = ScoringGraph(cfg, g.encoder, g.generator, g.critic)
     x = to_model_input(images, size=cfg.size, channels=cfg.channels)
-    share = det.manifest["training"]["config"]["holdout_share"]
-    _, std_idx, _ = split_indices(len(x), share, seed)
+    train_cfg = det.manifest["training"]["config"]
+    _, std_idx, _ = split_indices(len(x), train_cfg["holdout_share"], train_cfg["seed"])
     graph.fit_standardisation(x[std_idx])
     return Detector(cfg=cfg, graph=graph, threshold=det.threshold, manifest=det.manifest)
