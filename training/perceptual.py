@@ -20,7 +20,7 @@ from training.errors import BadConfig
 # stage 2 (24 ch, 1/4), stage 3 (40 ch, 1/8). `load_pretrained` checks the weights file against it.
 LITE0_BLOCKS = [(32, 32, 16, 3, 1), (16, 96, 24, 3, 2), (24, 144, 24, 3, 1), (24, 144, 40, 5, 2), (40, 240, 40, 5, 1)]
 TAPS = (2, 4)  # the outputs of these blocks, stage 2 and stage 3 upsampled to 1/4 of the side, are the features
-_STRIDE_2 = {1, 3, 5, 11}  # first block of stages 2, 3, 4 and 6
+_STRIDE_2 = {1, 3}  # first block of stages 2 and 3 (strides are not in the weights file)
 _IMAGENET_MEAN = (0.485, 0.456, 0.406)
 _IMAGENET_STD = (0.229, 0.224, 0.225)
 _BN_EPS = 1e-3  # the TensorFlow default the weights were trained with
@@ -57,12 +57,12 @@ class PerceptualNet(nn.Module):
 
     Always in eval mode (frozen batch-norm statistics); gray images are repeated to three channels."""
 
-    def __init__(self, block_shapes: list[tuple[int, int, int, int, int]] = LITE0_BLOCKS):
+    def __init__(self):
         super().__init__()
-        self.channels = sum(block_shapes[i][2] for i in TAPS)
-        self._conv_stem = nn.Conv2d(3, block_shapes[0][0], 3, stride=2, padding=1, bias=False)
-        self._bn0 = _bn(block_shapes[0][0])
-        self._blocks = nn.ModuleList([InvertedResidual(*shape) for shape in block_shapes])
+        self.channels = sum(LITE0_BLOCKS[i][2] for i in TAPS)
+        self._conv_stem = nn.Conv2d(3, LITE0_BLOCKS[0][0], 3, stride=2, padding=1, bias=False)
+        self._bn0 = _bn(LITE0_BLOCKS[0][0])
+        self._blocks = nn.ModuleList([InvertedResidual(*shape) for shape in LITE0_BLOCKS])
         self.register_buffer("mean", torch.tensor(_IMAGENET_MEAN).view(1, 3, 1, 1), persistent=False)
         self.register_buffer("std", torch.tensor(_IMAGENET_STD).view(1, 3, 1, 1), persistent=False)
         self.requires_grad_(False)

@@ -44,7 +44,7 @@ class HoldoutResult:
     masks: list[np.ndarray | None]  # (H, W) bool or None
 
 
-def _pixel_sets(h: HoldoutResult) -> tuple[list, list] | None:
+def pixel_sets(h: HoldoutResult) -> tuple[list, list] | None:
     """Masks and maps for the pixel metrics: every good image (no defect pixels) and each defective image that has
     a mask; a defective image without a mask is left out, as its pixels' labels are unknown."""
     if not any(m is not None for m, y in zip(h.masks, h.labels, strict=True) if y == 1):
@@ -66,7 +66,7 @@ def metrics_summary(holdout: HoldoutResult, choice: ThresholdChoice) -> dict:
     y, s, t = np.asarray(holdout.labels), np.asarray(holdout.scores, dtype=np.float64), float(choice.value)
     good, bad = s[y == 0], s[y == 1]
     both = len(good) > 0 and len(bad) > 0
-    pix = _pixel_sets(holdout)
+    pix = pixel_sets(holdout)
     has_pix = pix is not None and any(m.any() for m in pix[0]) and not all(m.all() for m in pix[0])
     classes = {c: int(sum(1 for k in holdout.classes if k == c)) for c in sorted(set(holdout.classes))}
     return {

@@ -13,7 +13,7 @@ import numpy as np
 import torch
 
 from training.config import ModelConfig, TrainConfig
-from training.data import ImageSet, to_model_input
+from training.data import ImageSet
 from training.detector import Detector
 from training.fit import split_indices
 from training.scoring import ScoringGraph
@@ -70,13 +70,13 @@ def score(det: Detector, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray, float
     return scores, heats.numpy(), ms
 
 
-def without_perceptual(det: Detector, images: list[np.ndarray]) -> Detector:
+def without_perceptual(det: Detector, x: torch.Tensor) -> Detector:
     """The same trained generator, encoder and critic scored with the GAN terms only (the ablation the benchmark
-    reports beside knowngood): standardised again on the very held-out images `train_bundle` used."""
+    reports beside knowngood): standardised again on the very held-out images `train_bundle` used; x (N, C, S, S)
+    are the training images in the bundle's working size and colour mode, in the order `train_bundle` saw them."""
     cfg = dataclasses.replace(det.cfg, perceptual=0.0)
     g = det.graph
     graph = ScoringGraph(cfg, g.encoder, g.generator, g.critic)
-    x = to_model_input(images, size=cfg.size, channels=cfg.channels)
     train_cfg = det.manifest["training"]["config"]
     _, std_idx, _ = split_indices(len(x), train_cfg["holdout_share"], train_cfg["seed"])
     graph.fit_standardisation(x[std_idx])

@@ -59,7 +59,7 @@ def evaluate(
         log(f"[{ds.name}] knowngood: training for {minutes:g} min on {len(ds.train)} known-good images")
         bundle_dir.mkdir(parents=True, exist_ok=True)
         run = knowngood_runner.train(ds.train, bundle_dir / f"{ds.name}.kgm", minutes=minutes, channels=c)
-        models["knowngood"] = (run, knowngood_runner.without_perceptual(run.detector, ds.train))
+        models["knowngood"] = (run, knowngood_runner.without_perceptual(run.detector, x_train))
     run, gan_only = models["knowngood"]
     for name, det in zip(OURS, (run.detector, gan_only)):
         scores, maps, ms = knowngood_runner.score(det, x_test)
