@@ -26,7 +26,7 @@ from training.perceptual import PerceptualNet
 from training.scoring import ScoringGraph
 
 FORMAT = "knowngood-bundle"
-FORMAT_VERSION = 2  # 2: the perceptual term (graph.perceptual.*, graph.feature_*); 1 had none
+FORMAT_VERSION = 3  # 3: model.residual_shift; 2: the perceptual term (graph.perceptual.*, graph.feature_*)
 _ZIP_TIME = (2020, 1, 1, 0, 0, 0)  # fixed entry times: same content -> same bytes
 MAX_BUNDLE_BYTES = 512 * 1024 * 1024
 
@@ -86,6 +86,8 @@ def from_bytes(data: bytes, *, name: str = "bundle") -> tuple[Detector, dict[str
     model = dict(manifest["model"])
     if manifest["format_version"] < 2:
         model.setdefault("perceptual", 0.0)  # format 1 predates the perceptual term
+    if manifest["format_version"] < 3:
+        model.setdefault("residual_shift", 0)  # its standardisation was fitted on the plain residual
     try:
         cfg = from_dict(ModelConfig, model)
     except (BadConfig, TypeError) as exc:

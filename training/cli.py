@@ -49,8 +49,18 @@ def _add_inspect(sub) -> None:
     p = sub.add_parser("inspect", help="score images or folders")
     p.add_argument("model", type=Path, metavar="MODEL")
     p.add_argument("paths", type=Path, nargs="+", metavar="PATH")
-    p.add_argument("--json", action="store_true", help="one JSON object a line: image, score, threshold, verdict")
-    p.add_argument("--heatmaps", type=Path, default=None, metavar="DIR", help="write <stem>.png and <stem>.npy")
+    p.add_argument(
+        "--json",
+        action="store_true",
+        help="one JSON object a line: image, score, threshold, verdict (+ heatmap with --heatmaps)",
+    )
+    p.add_argument(
+        "--heatmaps",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="write <stem>.png (overlay) and <stem>.npy (float32 map); stems shared by inputs get their folder",
+    )
     p.add_argument("--fail-on-flag", action="store_true", help="exit 1 when any part is flagged")
     p.add_argument("--skip-bad", action="store_true", help="report unreadable images instead of stopping")
     p.add_argument("--batch", type=int, default=32)

@@ -5,7 +5,9 @@ from __future__ import annotations
 import dataclasses
 import datetime as dt
 import json
+import os
 import sys
+from collections import Counter
 from pathlib import Path
 
 import numpy as np
@@ -126,11 +128,34 @@ def _expand(paths: list[Path]) -> list[Path]:
     return files
 
 
+def heatmap_names(files: list[Path]) -> dict[Path, str]:
+    """One file name (no suffix) per input image for `inspect --heatmaps`: the image's stem, or, where several
+    images share a stem (the same numbering in two folders), its path below their common folder with `_` for
+    `/` (pit/0001.png -> pit_0001); a `-2`, `-3` suffix settles anything still equal. A file given twice keeps
+    one name."""
+    unique = list(dict.fromkeys(p.resolve() for p in files))
+    count = Counter(p.stem for p in unique)
+    shared = [p.parent for p in unique if count[p.stem] > 1]
+    root = Path(os.path.commonpath(shared)) if shared else None
+    named: dict[Path, str] = {}
+    used: set[str] = set()
+    for p in unique:
+        base = p.stem if count[p.stem] == 1 else "_".join(p.with_suffix("").relative_to(root).parts)
+        name, k = base, 2
+        while name in used:
+            name, k = f"{base}-{k}", k + 1
+        named[p] = name
+        used.add(name)
+    return {p: named[p.resolve()] for p in files}
+
+
 def inspect(args) -> int:
     det, _ = bundle.load(args.model)
     files = _expand(args.paths)
+    names = {}
     if args.heatmaps is not None:
         args.heatmaps.mkdir(parents=True, exist_ok=True)
+        names = heatmap_names(files)
     flagged = 0
     for start in range(0, len(files), max(1, args.batch)):
         chunk, images = [], []
@@ -144,25 +169,20 @@ def inspect(args) -> int:
                 print(f"knowngood: skipped {path}: {exc}", file=sys.stderr)
         for path, img, res in zip(chunk, images, det.inspect(images, batch=args.batch)):
             flagged += res.verdict == "flag"
-            _emit(args, path, img, res)
+            _emit(args, path, img, res, names.get(path))
     return 1 if args.fail_on_flag and flagged else 0
 
 
-def _emit(args, path: Path, img: np.ndarray, res) -> None:
+def _emit(args, path: Path, img: np.ndarray, res, name: str | None) -> None:
+    row = {"image": str(path), "score": round(res.score, 6), "threshold": round(res.threshold, 6)}
+    row["verdict"] = res.verdict
+    if name is not None:
+        overlay = args.heatmaps / f"{name}.png"
+        vmax = max(2 * res.threshold, 1e-6) if np.isfinite(res.threshold) else float(res.heatmap.max() or 1)
+        overlay.write_bytes(heatmap_png_bytes(img, res.heatmap, vmax))
+        np.save(args.heatmaps / f"{name}.npy", res.heatmap.astype(np.float32))
+        row["heatmap"] = str(overlay)
     if args.json:
-        print(
-            json.dumps(
-                {
-                    "image": str(path),
-                    "score": round(res.score, 6),
-                    "threshold": round(res.threshold, 6),
-                    "verdict": res.verdict,
-                }
-            )
-        )
+        print(json.dumps(row))
     else:
         print(f"{res.verdict:4}  {res.score:8.3f}  (threshold {res.threshold:.3f})  {path}")
-    if args.heatmaps is not None:
-        vmax = max(2 * res.threshold, 1e-6) if np.isfinite(res.threshold) else float(res.heatmap.max() or 1)
-        (args.heatmaps / f"{path.stem}.png").write_bytes(heatmap_png_bytes(img, res.heatmap, vmax))
-        np.save(args.heatmaps / f"{path.stem}.npy", res.heatmap.astype(np.float32))

@@ -19,6 +19,7 @@ class ModelConfig:
     feature_layer: int = 2  # critic block whose output is f(x) for the feature residual
     kappa: float = 1.0  # weight of the critic-feature residual in the anomaly map
     perceptual: float = 1.0  # weight of the pretrained perceptual term (0 = GAN terms only); see perceptual.py
+    residual_shift: int = 1  # px the reconstruction may be off and still explain a pixel (see scoring.py)
     perceptual_shift: int = 1  # positions (of 4 px) a feature may move and still match known-good (fixture jitter)
     smooth_sigma: float = 2.0  # Gaussian smoothing of the anomaly map, in working-resolution pixels
     top_fraction: float = 0.003  # image score = mean of the top fraction of the heatmap (0.3 %: ~50 px at 128)
@@ -30,8 +31,9 @@ class ModelConfig:
             raise BadConfig(f"channels must be 1 or 3, got {self.channels}")
         if self.kappa < 0 or self.perceptual < 0:
             raise BadConfig(f"kappa and perceptual must be non-negative, got {self.kappa}, {self.perceptual}")
-        if not 0 <= self.perceptual_shift <= 3:
-            raise BadConfig(f"perceptual_shift must be 0 to 3, got {self.perceptual_shift}")
+        for name in ("residual_shift", "perceptual_shift"):
+            if not 0 <= getattr(self, name) <= 3:
+                raise BadConfig(f"{name} must be 0 to 3, got {getattr(self, name)}")
         if not 0 < self.top_fraction <= 1:
             raise BadConfig(f"top_fraction must be in (0, 1], got {self.top_fraction}")
 

@@ -30,6 +30,29 @@ def gaussian_kernel(sigma: float) -> torch.Tensor:
     return k / k.sum()
 
 
+def shifted_views(t: torch.Tensor, r: int) -> list[torch.Tensor]:
+    """The (2r + 1)² views of t (B, C, H, W) moved by -r..r positions each way, edges replicated."""
+    if r == 0:
+        return [t]
+    h, w = t.shape[-2:]
+    padded = F.pad(t, (r, r, r, r), mode="replicate")
+    return [padded[..., dy : dy + h, dx : dx + w] for dy in range(2 * r + 1) for dx in range(2 * r + 1)]
+
+
+def _min_over(maps: list[torch.Tensor]) -> torch.Tensor:
+    best = maps[0]
+    for m in maps[1:]:
+        best = torch.minimum(best, m)
+    return best
+
+
+def pixel_residual(x: torch.Tensor, recon: torch.Tensor, shift: int) -> torch.Tensor:
+    """(B, 1, H, W): |x - recon| averaged over colour, at the best-matching reconstruction pixel within `shift`
+    px. An edge the reconstruction draws a pixel off (fixture jitter) then costs nothing, while a pit or scratch
+    the reconstruction leaves out differs from every nearby reconstruction pixel and still shows."""
+    return _min_over([(x - r).abs().mean(1, keepdim=True) for r in shifted_views(recon, shift)])
+
+
 def _shrunk_std(samples: torch.Tensor) -> torch.Tensor:
     """Per-position std over samples (N, T, H, W) -> (T, H, W), each position's variance shrunk towards the
     map-wide variance of its channel, so a small holdout gives stable values."""
@@ -86,11 +109,12 @@ class ScoringGraph(nn.Module):
         return m.reshape(b, c, h, w)
 
     def term_maps(self, x: torch.Tensor) -> torch.Tensor:
-        """(B, T, S, S) smoothed raw terms: |x - G(E(x))|, |f(x) - f(G(E(x)))|² and, with a perceptual net,
-        the mean squared standardised deviation of its features from the known-good ones at each position."""
+        """(B, T, S, S) smoothed raw terms: |x - G(E(x))| at the best-matching reconstruction pixel within
+        `residual_shift` px, |f(x) - f(G(E(x)))|² and, with a perceptual net, the mean squared standardised
+        deviation of its features from the known-good ones at each position."""
         size = x.shape[-2:]
         recon = self.generator(self.encoder(x))  # (B, C, S, S)
-        pixel = (x - recon).abs().mean(1, keepdim=True)  # (B, 1, S, S)
+        pixel = pixel_residual(x, recon, self.cfg.residual_shift)  # (B, 1, S, S)
         feat = (self.critic.features(x) - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
         terms = [pixel, F.interpolate(feat, size=size, mode="bilinear", align_corners=False)]  # (B, 1, S, S) each
         if self.perceptual is not None:
@@ -103,16 +127,9 @@ class ScoringGraph(nn.Module):
         statistics of the best-matching position within `perceptual_shift` cells, so that the few pixels a
         part moves in its fixture do not count as a defect at every edge."""
         r = self.cfg.perceptual_shift
-        h, w = feats.shape[-2:]
-        mean = F.pad(self.feature_mean[None], (r, r, r, r), mode="replicate")[0]  # (F, h + 2r, w + 2r)
-        std = F.pad(self.feature_std[None], (r, r, r, r), mode="replicate")[0]
-        best = None
-        for dy in range(2 * r + 1):
-            for dx in range(2 * r + 1):
-                d = ((feats - mean[:, dy : dy + h, dx : dx + w]) / std[:, dy : dy + h, dx : dx + w]).pow(2)
-                d = d.mean(1, keepdim=True)
-                best = d if best is None else torch.minimum(best, d)
-        return best
+        means = shifted_views(self.feature_mean[None], r)  # (1, F, h, w) each
+        stds = shifted_views(self.feature_std[None], r)
+        return _min_over([((feats - m) / s).pow(2).mean(1, keepdim=True) for m, s in zip(means, stds)])
 
     def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         z = (self.term_maps(x) - self.term_mean) / self.term_std  # (B, T, S, S)

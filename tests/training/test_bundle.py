@@ -75,19 +75,34 @@ def test_frechet_arrays_survive(tiny_bundle):
     assert np.isfinite(frechet["holdout_features"]).all()
 
 
-def test_format_1_bundle_without_the_perceptual_term_still_loads(tiny_bundle, tiny_good_images):
+# what each older format lacked, and the settings that reproduce its scores
+OLDER_FORMATS = {
+    1: ({"perceptual": 0.0, "residual_shift": 0}, ("perceptual", "residual_shift")),
+    2: ({"residual_shift": 0}, ("residual_shift",)),
+}
+
+
+@pytest.mark.parametrize("version", sorted(OLDER_FORMATS))
+def test_older_format_bundle_loads_and_scores_as_it_was_fitted(tiny_bundle, tiny_good_images, version):
+    settings, absent = OLDER_FORMATS[version]
     det, frechet = bundle.load(tiny_bundle)
-    cfg = dataclasses.replace(det.cfg, perceptual=0.0)
+    cfg = dataclasses.replace(det.cfg, **settings)
     graph = bundle.new_graph(cfg)
+    kept = ("encoder", "generator", "critic", "perceptual")
+    nets = {k: v for k, v in det.graph.state_dict().items() if k.split(".")[0] in kept}
+    graph.load_state_dict(nets, strict=False)  # the same nets; statistics fitted below
+    graph.fit_features(det.prepare(tiny_good_images))
     graph.fit_standardisation(det.prepare(tiny_good_images))
     old = dataclasses.replace(det, cfg=cfg, graph=graph)
 
-    def as_format_1(m):
-        m["format_version"] = 1
-        del m["model"]["perceptual"]  # format 1 had no such setting
+    def as_older(m):
+        m["format_version"] = version
+        for key in absent:
+            del m["model"][key]  # that format had no such setting
 
-    loaded, _ = bundle.from_bytes(_rezip(bundle.to_bytes(old, frechet), as_format_1))
-    assert loaded.graph.perceptual is None and loaded.cfg.perceptual == 0.0
+    loaded, _ = bundle.from_bytes(_rezip(bundle.to_bytes(old, frechet), as_older))
+    assert all(getattr(loaded.cfg, k) == v for k, v in settings.items())
+    assert (loaded.graph.perceptual is None) == (cfg.perceptual == 0)
     assert [r.score for r in loaded.inspect(tiny_good_images[:3])] == [
         r.score for r in old.inspect(tiny_good_images[:3])
     ]

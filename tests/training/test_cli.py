@@ -3,6 +3,7 @@
 import json
 import subprocess
 import sys
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -11,6 +12,7 @@ from PIL import Image
 from demo_parts import render_scenario
 from training import bundle
 from training.cli import main
+from training.commands import heatmap_names
 
 STEPS = "12"
 
@@ -84,18 +86,31 @@ def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, caps
 
 
 def test_inspect_json_and_heatmaps(trained, scenario, tmp_path, capsys):
-    folder = scenario / "holdout" / "defective"
+    folder = scenario / "holdout" / "defective"  # one folder per defect class, each numbered from 0000.png
     code = main(["inspect", str(trained), str(folder), "--json", "--heatmaps", str(tmp_path)])
     lines = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
-    assert code == 0 and len(lines) == len(list(folder.rglob("*.png")))
+    images = list(folder.rglob("*.png"))
+    assert code == 0 and len(lines) == len(images) and len({p.stem for p in images}) < len(images)
     for row in lines:
-        assert set(row) == {"image", "score", "threshold", "verdict"}
+        assert set(row) == {"image", "score", "threshold", "verdict", "heatmap"}
         assert row["verdict"] == ("flag" if row["score"] > row["threshold"] else "pass")
-    stem = json.loads(json.dumps(lines[0]))["image"].rsplit("/", 1)[1][:-4]
-    heat = np.load(tmp_path / f"{stem}.npy")
+    overlays = {Path(row["heatmap"]) for row in lines}
+    assert len(overlays) == len(lines)  # shared stems do not overwrite each other
+    assert overlays == set(tmp_path.glob("*.png")) and len(list(tmp_path.glob("*.npy"))) == len(lines)
+    row = lines[0]
+    image = Path(row["image"])
+    assert Path(row["heatmap"]).name == f"{image.parent.name}_{image.stem}.png"
+    heat = np.load(Path(row["heatmap"]).with_suffix(".npy"))
     assert heat.dtype == np.float32 and heat.shape == (64, 64)  # the input image's own resolution
-    with Image.open(tmp_path / f"{stem}.png") as overlay:
+    with Image.open(row["heatmap"]) as overlay:
         assert overlay.size == (64, 64)
+
+
+def test_heatmap_names_keep_plain_stems_and_separate_shared_ones(tmp_path):
+    files = [tmp_path / "a" / "0001.png", tmp_path / "b" / "0001.png", tmp_path / "b" / "0002.png"]
+    files += [tmp_path / "a_0001.png", tmp_path / "b" / "0002.png"]  # a name equal to a made one; a repeat
+    names = heatmap_names(files)
+    assert [names[f] for f in files] == ["a_0001", "b_0001", "0002", "a_0001-2", "0002"]
 
 
 def test_fail_on_flag_exit_code(trained, scenario, tmp_path):

@@ -25,7 +25,7 @@ N_TRAIN, N_GOOD, N_PER_DEFECT = 120, 30, 6
 # kind: (image AUROC, pixel AUROC) measured on this reduced set at seed 0, 2 threads, torch 2.14.1, ~30 s of
 # training each; the floors sit 0.05 below, room for float differences between CPUs and libraries. For scale, on
 # the full-size demo the mean grey level scores 0.51 (both kinds) and PCA 0.74 / 0.61 image AUROC (`make bench`).
-MEASURED = {"bracket": (0.887, 0.854), "weave": (0.916, 0.939)}
+MEASURED = {"bracket": (0.891, 0.866), "weave": (0.918, 0.948)}
 FLOORS = {kind: (img - 0.05, pix - 0.05) for kind, (img, pix) in MEASURED.items()}
 
 
@@ -58,5 +58,6 @@ def test_demo_floors(scenario, kind, tmp_path):
     finally:
         torch.set_num_threads(threads)
     img, pix = image_auroc(h.labels, h.scores), pixel_auroc(*pixel_sets(h))  # the pixel sets `tune` reports on
+    print(f"{kind}: image AUROC {img:.3f}, pixel AUROC {pix:.3f}")  # seen with `pytest -s` when re-measuring
     img_floor, pix_floor = FLOORS[kind]
     assert img >= img_floor and pix >= pix_floor, f"{kind}: image AUROC {img:.3f}, pixel AUROC {pix:.3f}"

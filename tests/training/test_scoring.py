@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import torch
 
-from training import bundle
+from training import bundle, scoring
 
 
 def test_score_is_top_fraction_mean_of_the_weighted_maximum_of_standardised_terms(tiny_bundle, tiny_good_images):
@@ -70,3 +70,30 @@ def test_onnx_runtime_gives_the_same_scores(tiny_bundle, tiny_good_images):
     for a, b in zip(eager, fast):
         assert b.score == pytest.approx(a.score, rel=1e-4, abs=1e-5)  # float32 rounding between kernels
         assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=1e-4)
+
+
+def _plate_with_edge(side: int = 32) -> torch.Tensor:
+    """(1, 1, side, side): a bright plate on a dark ground, its edge a vertical step at column 12."""
+    x = torch.full((1, 1, side, side), 0.2)
+    x[..., 12:] = 0.8
+    return x
+
+
+def test_shift_tolerant_residual_forgives_a_one_pixel_edge_offset():
+    # our own construction: the reconstruction draws the plate's edge one pixel off, as fixture jitter does
+    x = _plate_with_edge()
+    recon = torch.cat([x[..., :1], x[..., :-1]], -1)  # everything one pixel to the right
+    exact = scoring.pixel_residual(x, recon, shift=0)
+    tolerant = scoring.pixel_residual(x, recon, shift=1)
+    assert exact[..., 12].flatten().tolist() == pytest.approx([0.6] * 32)  # the step itself, 0.8 - 0.2
+    assert float(tolerant.max()) == pytest.approx(0.0, abs=1e-7)
+
+
+def test_shift_tolerant_residual_still_sees_a_pit_the_reconstruction_leaves_out():
+    recon = _plate_with_edge()
+    x = recon.clone()
+    x[..., 18:22, 20:24] -= 0.3  # a 4 px pit on the plate, 3 px from the edge
+    for shift in (0, 1, 2):
+        res = scoring.pixel_residual(x, recon, shift=shift)
+        assert float(res[..., 19:21, 21:23].min()) == pytest.approx(0.3, abs=1e-6)  # its core, whatever the shift
+        assert float(res[..., :, :8].max()) == pytest.approx(0.0, abs=1e-7)  # the ground stays clean
