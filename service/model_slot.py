@@ -5,14 +5,11 @@ from __future__ import annotations
 
 import dataclasses
 import threading
-from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
-import torch
 
 from service.drift import DriftMonitor
-from service.features import onnx_features
 from service.problems import Problem
 from service.settings import Settings
 from service.store import ModelEvent, utc_now
@@ -28,7 +25,6 @@ class LoadedModel:
     drift: DriftMonitor
     loaded_at: str
     source: str  # "startup: <path>", "upload", ...
-    features: Callable[[torch.Tensor], np.ndarray]  # (B, C, S, S) -> (B, F) drift features
 
     @property
     def runtime(self) -> str:
@@ -56,18 +52,15 @@ def prepare(data: bytes, *, name: str, settings: Settings, source: str) -> Loade
     """Validates a bundle completely (`training.bundle.from_bytes`: zip, manifest, format, shapes, a test forward
     pass) and readies it for serving; raises BadBundle and changes nothing on any problem."""
     detector, frechet = bundle.from_bytes(data, name=name)
-    features = detector.embed
     if settings.onnx:
         try:
             detector.use_onnx(threads=settings.torch_threads)
-            features = onnx_features(detector, threads=settings.torch_threads)
         except Exception as exc:  # the exporter and runtime raise many types; all mean this bundle cannot serve
             raise BadBundle(
                 f"{name}: the model cannot run under ONNX Runtime ({exc}); set KNOWNGOOD_ONNX=false "
                 "to serve it with PyTorch"
             ) from None
     return LoadedModel(
-        features=features,
         detector=detector,
         frechet=frechet,
         drift=DriftMonitor(frechet, window=settings.drift_window),

@@ -85,8 +85,7 @@ def inspect_uploads(
 def _score(state: ServiceState, model: LoadedModel, images: list[np.ndarray]) -> Scored:
     x = model.detector.prepare(images)  # (B, C, S, S)
     with state.gate:
-        scores, heats = model.detector.score_batch(x)
-        features = model.features(x)
+        scores, heats, features = model.detector.score_and_embed(x)
     return Scored(x=x, scores=scores, heats=heats, features=features)
 
 

@@ -47,17 +47,19 @@ class Detector:
         """(C, H, W) float arrays at any size -> one (B, C, S, S) batch in the model's colour mode."""
         return to_model_input(images, size=self.cfg.size, channels=self.cfg.channels)
 
-    @torch.inference_mode()
     def score_batch(self, x: torch.Tensor, batch: int = 32) -> tuple[np.ndarray, torch.Tensor]:
         """x (N, C, S, S) -> anomaly scores (N,) float64 (higher = less like known-good) and heatmaps (N, S, S)."""
+        scores, heats, _ = self.score_and_embed(x, batch)
+        return scores, heats
+
+    @torch.inference_mode()
+    def score_and_embed(self, x: torch.Tensor, batch: int = 32) -> tuple[np.ndarray, torch.Tensor, np.ndarray]:
+        """`score_batch` plus each image's `embed` features (N, F) float64, from the same pass."""
         self.graph.eval()
         run = self.runner or self.graph
-        scores, heats = [], []
-        for i in range(0, len(x), batch):
-            s, h = run(x[i : i + batch])
-            scores.append(s)
-            heats.append(h)
-        return torch.cat(scores).double().numpy(), torch.cat(heats)
+        outputs = [run(x[i : i + batch]) for i in range(0, len(x), batch)]
+        scores, heats, embeddings = (torch.cat(parts) for parts in zip(*outputs))
+        return scores.double().numpy(), heats, embeddings.double().numpy()
 
     def inspect(self, images: list[np.ndarray], batch: int = 32) -> list[Inspection]:
         """Scores native-resolution images as one batch; heatmaps come back at each image's own size."""

@@ -104,8 +104,12 @@ class Critic(nn.Module):
 
     def pooled_features(self, x: torch.Tensor) -> torch.Tensor:
         """(B, 8w): spatial mean of the last block, the embedding used for Fréchet distances."""
-        h = x * 2 - 1
-        for block in self.blocks:
+        return self.pool_from(self.features(x))
+
+    def pool_from(self, f: torch.Tensor) -> torch.Tensor:
+        """`pooled_features` from f(x), the output of `features`: the blocks after it, then the spatial mean."""
+        h = f
+        for block in self.blocks[self.feature_layer :]:
             h = block(h)
         return h.mean(dim=(2, 3))
 

@@ -13,7 +13,8 @@ from training.scoring import ScoringGraph
 
 
 def export_onnx(graph: ScoringGraph) -> bytes:
-    """The graph as ONNX bytes with a dynamic batch axis: x (B, C, S, S) -> score (B,), heat (B, S, S)."""
+    """The graph as ONNX bytes with a dynamic batch axis: x (B, C, S, S) -> score (B,), heat (B, S, S),
+    embedding (B, F)."""
     graph.eval()
     s = graph.cfg.size
     buf = io.BytesIO()
@@ -24,8 +25,8 @@ def export_onnx(graph: ScoringGraph) -> bytes:
             (torch.rand(1, graph.cfg.channels, s, s),),
             buf,
             input_names=["x"],
-            output_names=["score", "heat"],
-            dynamic_axes={"x": {0: "batch"}, "score": {0: "batch"}, "heat": {0: "batch"}},
+            output_names=["score", "heat", "embedding"],
+            dynamic_axes={"x": {0: "batch"}, "score": {0: "batch"}, "heat": {0: "batch"}, "embedding": {0: "batch"}},
             opset_version=17,
             dynamo=False,
         )
@@ -33,7 +34,7 @@ def export_onnx(graph: ScoringGraph) -> bytes:
 
 
 class OnnxRunner:
-    """Callable like the graph: (B, C, S, S) tensor -> (score, heat) tensors."""
+    """Callable like the graph: (B, C, S, S) tensor -> (score, heat, embedding) tensors."""
 
     def __init__(self, graph: ScoringGraph, threads: int = 0):
         import onnxruntime as ort
@@ -44,9 +45,9 @@ class OnnxRunner:
         opts.log_severity_level = 3
         self.session = ort.InferenceSession(export_onnx(graph), opts, providers=["CPUExecutionProvider"])
 
-    def __call__(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        score, heat = self.session.run(None, {"x": np.ascontiguousarray(x.numpy(), dtype=np.float32)})
-        return torch.from_numpy(score), torch.from_numpy(heat)
+    def __call__(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        outputs = self.session.run(None, {"x": np.ascontiguousarray(x.numpy(), dtype=np.float32)})
+        return tuple(torch.from_numpy(o) for o in outputs)
 
 
 def available() -> bool:

@@ -109,18 +109,23 @@ class ScoringGraph(nn.Module):
         return m.reshape(b, c, h, w)
 
     def term_maps(self, x: torch.Tensor) -> torch.Tensor:
+        return self._terms(x)[0]
+
+    def _terms(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """(B, T, S, S) smoothed raw terms: |x - G(E(x))| at the best-matching reconstruction pixel within
         `residual_shift` px, |f(x) - f(G(E(x)))|² and, with a perceptual net, the mean squared standardised
-        deviation of its features from the known-good ones at each position."""
+        deviation of its features from the known-good ones at each position; and f(x), which the embedding
+        continues from."""
         size = x.shape[-2:]
         recon = self.generator(self.encoder(x))  # (B, C, S, S)
         pixel = pixel_residual(x, recon, self.cfg.residual_shift)  # (B, 1, S, S)
-        feat = (self.critic.features(x) - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
+        fx = self.critic.features(x)
+        feat = (fx - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
         terms = [pixel, F.interpolate(feat, size=size, mode="bilinear", align_corners=False)]  # (B, 1, S, S) each
         if self.perceptual is not None:
             dev = self._deviation(self.perceptual(x))  # (B, 1, S/4, S/4)
             terms.append(F.interpolate(dev, size=size, mode="bilinear", align_corners=False))  # (B, 1, S, S)
-        return self._smooth(torch.cat(terms, 1))
+        return self._smooth(torch.cat(terms, 1)), fx
 
     def _deviation(self, feats: torch.Tensor) -> torch.Tensor:
         """(B, F, h, w) features -> (B, 1, h, w): the mean squared standardised distance to the known-good
@@ -131,11 +136,14 @@ class ScoringGraph(nn.Module):
         stds = shifted_views(self.feature_std[None], r)
         return _min_over([((feats - m) / s).pow(2).mean(1, keepdim=True) for m, s in zip(means, stds)])
 
-    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        z = (self.term_maps(x) - self.term_mean) / self.term_std  # (B, T, S, S)
+    def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
+        """-> score (B,), heat (B, S, S) and the pooled critic features (B, F) that drift is measured in, which
+        come almost free here: they continue from the f(x) the feature residual already computed."""
+        maps, fx = self._terms(x)
+        z = (maps - self.term_mean) / self.term_std  # (B, T, S, S)
         heat = (z * self.weights).amax(1).clamp(min=0)  # (B, S, S): the strongest evidence at each pixel
         score = heat.flatten(1).topk(self.top_k, dim=1).values.mean(1)  # (B,)
-        return score, heat
+        return score, heat, self.critic.pool_from(fx)
 
     @torch.no_grad()
     def fit_features(self, good: torch.Tensor, batch: int = 64) -> None:

@@ -93,8 +93,8 @@ def measure(det: Detector, native: list[np.ndarray], *, repeats: int = 20) -> di
         }
     x = det.prepare(_batch(native, 64))
     with torch.inference_mode():
-        torch_scores, torch_heat = det.graph(x)
-    onnx_scores, onnx_heat = onnx(x)
+        torch_scores, torch_heat, _ = det.graph(x)
+    onnx_scores, onnx_heat, _ = onnx(x)
     out["onnx_max_abs_score_diff"] = float((torch_scores - onnx_scores).abs().max())
     out["onnx_max_abs_heatmap_diff"] = float((torch_heat - onnx_heat).abs().max())
     return out

@@ -150,4 +150,5 @@ def test_onnx_runtime_scores_like_pytorch(make_client, tiny_good_images, tmp_pat
         assert b == pytest.approx(a, rel=1e-4, abs=1e-5)
     served = onnx_client.app.state.service.slot.current
     x = served.detector.prepare(tiny_good_images[:4])
-    np.testing.assert_allclose(served.features(x), served.detector.embed(x), rtol=1e-4, atol=1e-6)  # drift features
+    _, _, drift_features = served.detector.score_and_embed(x)  # what the drift window gets, from the scoring pass
+    np.testing.assert_allclose(drift_features, served.detector.embed(x), rtol=1e-4, atol=1e-6)

@@ -14,7 +14,7 @@ def test_score_is_top_fraction_mean_of_the_weighted_maximum_of_standardised_term
     det, _ = bundle.load(tiny_bundle)
     x = det.prepare(tiny_good_images[:5])
     with torch.inference_mode():
-        score, heat = det.graph(x)
+        score, heat, _ = det.graph(x)
         z = (det.graph.term_maps(x) - det.graph.term_mean) / det.graph.term_std
     cfg = det.cfg
     weighted = torch.stack([z[:, 0], cfg.kappa * z[:, 1], cfg.perceptual * z[:, 2]], 1)
@@ -70,6 +70,18 @@ def test_onnx_runtime_gives_the_same_scores(tiny_bundle, tiny_good_images):
     for a, b in zip(eager, fast):
         assert b.score == pytest.approx(a.score, rel=1e-4, abs=1e-5)  # float32 rounding between kernels
         assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=1e-4)
+
+
+def test_scoring_pass_embedding_equals_the_critic_pooled_features(tiny_bundle, tiny_good_images):
+    # the drift window's features come from the scoring pass; they must be `embed`'s, eager and under ONNX Runtime
+    det, _ = bundle.load(tiny_bundle)
+    x = det.prepare(tiny_good_images[:5])
+    reference = det.embed(x)
+    for runner in (det, dataclasses.replace(det).use_onnx(threads=1)):
+        scores, _, embedding = runner.score_and_embed(x, batch=2)
+        assert embedding.shape == (5, 8 * det.cfg.width)
+        np.testing.assert_allclose(embedding, reference, rtol=1e-4, atol=1e-6)
+        np.testing.assert_allclose(scores, det.score_batch(x)[0], rtol=1e-4, atol=1e-5)
 
 
 def _plate_with_edge(side: int = 32) -> torch.Tensor:
