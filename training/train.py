@@ -21,7 +21,8 @@ from training.tuning import conformal_threshold
 MIN_IMAGES = 12
 SCORE_DEFINITION = (
     "heatmap = max(0, z_pixel, kappa * z_feature, perceptual * z_perceptual), where z_* are smoothed maps "
-    "standardised per pixel against held-out known-good images: the image residual |x - G(E(x))|, the "
+    "standardised per pixel against held-out known-good images: the image residual |x - G(E(x))| at the "
+    "best-matching reconstruction pixel within `residual_shift` px, the "
     "critic-feature residual |f(x) - f(G(E(x)))|^2 and the perceptual term, the mean squared standardised "
     "deviation of pretrained EfficientNet-Lite0 features of x from those of the known-good images at the "
     "best-matching nearby position; score = mean of the top `top_fraction` of the heatmap. Higher = less like "
