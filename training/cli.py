@@ -11,6 +11,7 @@ import sys
 from importlib.metadata import entry_points
 from pathlib import Path
 
+from training.config import ModelConfig
 from training.errors import KnowngoodError
 
 
@@ -23,6 +24,14 @@ def _add_train(sub) -> None:
     p.add_argument("--size", type=int, default=128, help="working resolution in px (multiple of 16)")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--recipe", choices=("joint", "two_stage"), default="joint")
+    p.add_argument(
+        "--residual-shift",
+        type=int,
+        choices=range(4),
+        default=ModelConfig.residual_shift,
+        metavar="PX",
+        help="px of fixture jitter the image residual forgives (default 1; 0 for fine random textures, see README)",
+    )
     p.add_argument("--target-false-reject", type=float, default=0.01, help="conformal threshold target")
     p.add_argument("--skip-bad", action="store_true", help="skip unreadable images and report them")
     p.add_argument("--fresh", action="store_true", help="ignore a checkpoint left by an interrupted run")

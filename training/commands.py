@@ -33,7 +33,7 @@ def train(args) -> int:
         print(f"knowngood: skipped {path}: {why}", file=sys.stderr)
     steps = args.steps if args.steps is not None else 10**9
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
-    model = ModelConfig(size=args.size, channels=good.channels)
+    model = ModelConfig(size=args.size, channels=good.channels, residual_shift=args.residual_shift)
     tcfg = TrainConfig(
         steps=steps,
         minutes=minutes or 0.0,
@@ -174,8 +174,12 @@ def inspect(args) -> int:
 
 
 def _emit(args, path: Path, img: np.ndarray, res, name: str | None) -> None:
-    row = {"image": str(path), "score": round(res.score, 6), "threshold": round(res.threshold, 6)}
-    row["verdict"] = res.verdict
+    row = {
+        "image": str(path),
+        "score": round(res.score, 6),
+        "threshold": round(res.threshold, 6),
+        "verdict": res.verdict,
+    }
     if name is not None:
         overlay = args.heatmaps / f"{name}.png"
         vmax = max(2 * res.threshold, 1e-6) if np.isfinite(res.threshold) else float(res.heatmap.max() or 1)

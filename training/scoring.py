@@ -63,14 +63,14 @@ def _shrunk_std(samples: torch.Tensor) -> torch.Tensor:
 
 
 class ScoringGraph(nn.Module):
-    """The whole inference path as one module (exportable to ONNX): x (B, C, S, S) in [0, 1] ->
-    term maps, standardised heatmap (B, S, S) and anomaly score (B,), higher = less like known-good.
+    """The whole inference path as one module (exportable to ONNX): x (B, C, S, S) in [0, 1] -> anomaly score
+    (B,), higher = less like known-good, standardised heatmap (B, S, S) and the drift embedding (B, F).
 
-    Terms: (0) image residual, (1) critic-feature residual, (2) when `perceptual` is given, the perceptual
-    term: how far the pretrained features of x lie from those of known-good images at the same place. Each is
-    standardised per pixel; the heatmap is their weighted maximum (weights 1, kappa, perceptual), because the
-    terms see different defects (the GAN terms texture flaws, the perceptual term shape and shading ones) and
-    a sum dilutes whichever one alone sees the defect (measured: README, "The method").
+    Terms: (0) image residual (shift-tolerant, `pixel_residual`), (1) critic-feature residual, (2) when
+    `perceptual` is given, the perceptual term: how far the pretrained features of x lie from those of known-good
+    images at the same place. Each is standardised per pixel; the heatmap is their weighted maximum (weights 1,
+    kappa, perceptual), because the terms see different defects (the GAN terms texture flaws, the perceptual term
+    shape and shading ones) and a sum dilutes whichever one alone sees the defect (measured: README, "The method").
     """
 
     def __init__(

@@ -54,6 +54,16 @@ def test_same_seed_data_and_steps_give_the_same_bundle(trained, scenario, tmp_pa
     assert a.threshold == b.threshold
 
 
+def test_residual_shift_is_a_train_option_stored_in_the_bundle(scenario, tmp_path, capsys):
+    good, out = str(scenario / "train" / "good"), tmp_path / "plain.kgm"
+    args = ["train", good, "-o", str(out), "--steps", "2", "--size", "64", "--quiet"]
+    assert main([*args, "--residual-shift", "0"]) == 0
+    assert bundle.load(out)[0].cfg.residual_shift == 0
+    with pytest.raises(SystemExit) as bad:
+        main([*args, "--residual-shift", "5"])
+    assert bad.value.code == 2 and "--residual-shift" in capsys.readouterr().err
+
+
 def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, capsys):
     out, report = tmp_path / "tuned.kgm", tmp_path / "report"
     h = scenario / "holdout"
