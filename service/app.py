@@ -5,19 +5,20 @@ from __future__ import annotations
 
 import logging
 from contextlib import asynccontextmanager
-from pathlib import Path
 
 import torch
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 from starlette.concurrency import run_in_threadpool
 
-from service import problems
-from service.deps import ServiceState
+from service import problems, restore
+from service.admission import Stage
+from service.deps import ServiceState, check_admin
 from service.files import FileStore
-from service.limits import BodyLimitMiddleware
+from service.limits import BodyGate
 from service.metrics import Metrics, MetricsMiddleware
-from service.model_slot import LoadedModel, ModelSlot, model_event, prepare
+from service.model_slot import ModelSlot, model_event
+from service.problems import CrashGuard
 from service.routes import inspections, ops
 from service.routes import model as model_routes
 from service.settings import Settings, get_settings
@@ -36,43 +37,44 @@ quality standards require."""
 
 
 def open_state(settings: Settings, metrics: Metrics) -> ServiceState:
-    """Opens the store and files, loads the startup model (re-applying a threshold set over the API for this very
-    bundle), and logs the load. Raises BadBundle on a bad model file: the service does not start half-configured."""
+    """Opens the store and files and serves what `restore.choose` says (the model swapped in over the API before a
+    restart, or the command-line bundle), logging which model and why. Raises BadBundle on a bad command-line
+    bundle: the service does not start half-configured."""
     torch.set_num_threads(settings.torch_threads)
     store = SqliteStore(settings.db)
+    files = FileStore(settings.data_dir, keep_images=settings.keep_images)
+    start = restore.choose(store, files, settings)
     state = ServiceState(
         settings=settings,
         store=store,
-        files=FileStore(settings.data_dir, keep_images=settings.keep_images),
-        slot=ModelSlot(),
+        files=files,
+        slot=ModelSlot(startup_sha256=start.startup_sha256),
         metrics=metrics,
         tokens={ServiceState.token_key(t): c for t, c in settings.tokens().items()},
+        decoding=Stage(
+            "decodes",
+            slots=settings.max_decodes,
+            queue=settings.max_queue,
+            on_refuse=lambda: metrics.observe_busy("decoding"),
+        ),
+        scoring=Stage(
+            "scoring passes", slots=1, queue=settings.max_queue, on_refuse=lambda: metrics.observe_busy("scoring")
+        ),
     )
-    if settings.model_path is not None:
-        path = Path(settings.model_path)
-        loaded = _restore_threshold(
-            store, prepare(path.read_bytes(), name=str(path), settings=settings, source=f"startup: {path}")
-        )
-        state.slot.install(loaded, record=lambda old, m: store.add_model_event(event=model_event("load", m, "startup")))
-        log.info("serving model %s (%s), threshold %.4g", loaded.detector.model_id, path, loaded.detector.threshold)
+    if start.current is None:
+        log.info("serving no model (%s)", start.why)
+        return state
+
+    def record(old, new, serving):
+        store.add_model_event(event=model_event("load", new, "startup", reason=start.why[:500]), serving=serving)
+
+    state.slot.install(start.current, previous=start.previous, record=record)
+    det = start.current.detector
+    log.info(
+        "serving model %s (sha256 %s), threshold %.4g: %s", det.model_id, det.sha256[:12], det.threshold, start.why
+    )
+    restore.keep_bundles(state.files, state.slot, keep=settings.keep_bundles)
     return state
-
-
-def _restore_threshold(store: SqliteStore, loaded: LoadedModel) -> LoadedModel:
-    """The threshold this very bundle (same sha256) was last served with, if a change over the API made it differ
-    from the bundle's own: a restart must not quietly undo an engineer's threshold change."""
-    sha = loaded.detector.sha256
-    last = store.latest_event(model_sha256=sha)
-    if last is None or last.threshold == loaded.detector.threshold:
-        return loaded
-    change = store.latest_event(model_sha256=sha, kind="threshold")  # who set it, when and why
-    who = f"{change.operator} ({change.caller})" if change else last.caller
-    return loaded.with_threshold(
-        last.threshold,
-        set_by=who,
-        reason=change.reason if change else None,
-        set_at=change.time if change else last.time,
-    )
 
 
 @asynccontextmanager
@@ -105,10 +107,18 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         app.include_router(router)
     app.mount("/static", StaticFiles(directory=ops.STATIC), name="static")
 
-    def limit_for(method: str, path: str) -> int:  # requests arrive only after the lifespan set up the state
-        s = app.state.service.settings
-        return s.max_bundle_bytes if (method, path.rstrip("/")) == ("PUT", "/v1/model") else s.max_upload_bytes
+    def body_limit(method: str, path: str, headers) -> int:  # requests arrive only after the lifespan set the state
+        state: ServiceState = app.state.service
+        path = path.rstrip("/")
+        if method in ("GET", "HEAD", "OPTIONS") or not path.startswith("/v1/"):
+            return state.settings.max_upload_bytes  # open routes and reads: nothing there reads a body
+        caller = state.caller(headers.get("authorization"))  # 401 before a byte of the body is read
+        if (method, path) == ("PUT", "/v1/model"):
+            check_admin(caller)  # 403 likewise: the bundle limit is for admins only
+            return state.settings.max_bundle_bytes
+        return state.settings.max_upload_bytes
 
-    app.add_middleware(BodyLimitMiddleware, limit_for=limit_for)
+    app.add_middleware(BodyGate, check=body_limit)
+    app.add_middleware(CrashGuard)
     app.add_middleware(MetricsMiddleware, metrics=app.state.metrics)
     return app

@@ -80,12 +80,36 @@ class FileStore:
 
     def put_bundle(self, sha256: str, data: bytes) -> Path:
         """Keeps an uploaded bundle as models/<sha256>.kgm, so it can be served again after a restart."""
-        if not _SHA.match(sha256):
-            raise ValueError(f"not a sha256: {sha256!r}")
-        path = self.root / "models" / f"{sha256}.kgm"
-        if not path.exists():
+        path = self._bundle_path(sha256)
+        if path.exists():
+            os.utime(path)  # an upload again is recent use: retention keeps the newest
+        else:
             _atomic_write(path, lambda f: f.write(data), durable=True)
         return path
+
+    def get_bundle(self, sha256: str) -> bytes | None:
+        try:
+            return self._bundle_path(sha256).read_bytes()
+        except FileNotFoundError:
+            return None
+
+    def prune_bundles(self, *, keep: int, protect: set[str]) -> list[str]:
+        """Deletes kept bundles beyond the `keep` most recently stored, never one in `protect` (current, previous,
+        the command-line bundle); returns the sha256 of those deleted."""
+        paths = sorted(
+            (p for p in (self.root / "models").glob("*.kgm") if _SHA.match(p.stem)),
+            key=lambda p: p.stat().st_mtime_ns,
+            reverse=True,
+        )
+        doomed = [p for p in paths if p.stem not in protect][keep:]
+        for p in doomed:
+            p.unlink(missing_ok=True)
+        return [p.stem for p in doomed]
+
+    def _bundle_path(self, sha256: str) -> Path:
+        if not _SHA.match(sha256):
+            raise ValueError(f"not a sha256: {sha256!r}")
+        return self.root / "models" / f"{sha256}.kgm"
 
 
 def _atomic_write(path: Path, write, *, durable: bool = False) -> None:

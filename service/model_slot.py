@@ -12,7 +12,7 @@ import numpy as np
 from service.drift import DriftMonitor
 from service.problems import Problem
 from service.settings import Settings
-from service.store import ModelEvent, utc_now
+from service.store import ModelEvent, Serving, utc_now
 from training import bundle
 from training.detector import Detector
 from training.errors import BadBundle, ModelNotReady
@@ -94,10 +94,15 @@ def model_event(
 
 
 class ModelSlot:
-    def __init__(self) -> None:
+    """The current model and the rollback target. Every change computes the `Serving` it leads to, builds the
+    response with `respond(new, previous)` and records the event with `record(old, new, serving)`, all under one
+    lock and before anything changes: if either raises, the service serves what it served (all-or-nothing)."""
+
+    def __init__(self, *, startup_sha256: str | None = None) -> None:
         self._lock = threading.Lock()
         self._current: LoadedModel | None = None
         self._previous: LoadedModel | None = None
+        self.startup_sha256 = startup_sha256  # the command-line bundle of this start (kept in `Serving`)
 
     def get(self) -> LoadedModel:
         current = self._current  # one read: the request keeps this object whatever happens next
@@ -113,34 +118,33 @@ class ModelSlot:
     def previous(self) -> LoadedModel | None:
         return self._previous
 
-    def install(self, new: LoadedModel, *, record=None) -> LoadedModel | None:
-        """Makes `new` current; the model it replaces becomes the rollback target and is returned. `record(old, new)`
-        runs first, under the lock: if it raises (the audit store refused the event), nothing changes."""
+    def _change(self, old, new: LoadedModel, previous: LoadedModel | None, record, respond):
+        result = respond(new, previous) if respond is not None else new
+        if record is not None:
+            serving = Serving(
+                current_sha256=new.detector.sha256,
+                previous_sha256=previous.detector.sha256 if previous else None,
+                startup_sha256=self.startup_sha256,
+            )
+            record(old, new, serving)
+        self._current, self._previous = new, previous
+        return result
+
+    def install(self, new: LoadedModel, *, record=None, respond=None, previous: LoadedModel | None = None):
+        """Makes `new` current; the model it replaces (or, at start, `previous`) becomes the rollback target."""
         with self._lock:
             old = self._current
-            if record is not None:
-                record(old, new)
-            self._current = new
-            if old is not None:
-                self._previous = old
-            return old
+            return self._change(old, new, old or previous or self._previous, record, respond)
 
-    def rollback(self, *, record=None) -> LoadedModel:
-        """Swaps current and previous (so a second rollback undoes the first); returns the new current."""
+    def rollback(self, *, record=None, respond=None):
+        """Swaps current and previous (so a second rollback undoes the first)."""
         with self._lock:
             if self._previous is None or self._current is None:
                 raise Problem(409, "there is no previous model to roll back to; PUT /v1/model keeps one")
-            if record is not None:
-                record(self._current, self._previous)
-            self._current, self._previous = self._previous, self._current
-            return self._current
+            return self._change(self._current, self._previous, self._current, record, respond)
 
-    def update(self, change, *, record=None) -> LoadedModel:
-        """Replaces the current model by `change(current)` (threshold edits); returns the new one."""
+    def update(self, change, *, record=None, respond=None):
+        """Replaces the current model by `change(current)` (threshold edits)."""
         with self._lock:
             old = self.get()
-            new = change(old)
-            if record is not None:
-                record(old, new)
-            self._current = new
-            return new
+            return self._change(old, change(old), self._previous, record, respond)

@@ -19,11 +19,22 @@ def vmax_for(threshold: float, heat: np.ndarray) -> float:
     return max(float(np.nanmax(heat, initial=0.0)), 1e-6)
 
 
+def overlay_size(height: int, width: int) -> tuple[int, int]:
+    """The overlay's (height, width): the input image's, scaled down to MAX_SIDE on the long side."""
+    scale = min(1.0, MAX_SIDE / max(height, width))
+    return max(1, round(height * scale)), max(1, round(width * scale))
+
+
+def overlay_base(image: np.ndarray) -> np.ndarray:
+    """(C, H, W) -> the image at `overlay_size`: what an overlay needs of a large image, so the full-size one need
+    not be kept while the batch is scored."""
+    return _resize(torch.from_numpy(np.ascontiguousarray(image, dtype=np.float32)), overlay_size(*image.shape[-2:]))
+
+
 def overlay_png(image: np.ndarray, heat: np.ndarray, *, height: int, width: int, threshold: float) -> bytes:
     """image (C, h, w) in [0, 1] at any size, heat (S, S) at the model's working resolution -> PNG of the overlay at
     the input image's (height, width), scaled down to MAX_SIDE on the long side."""
-    scale = min(1.0, MAX_SIDE / max(height, width))
-    size = (max(1, round(height * scale)), max(1, round(width * scale)))
+    size = overlay_size(height, width)
     img = _resize(torch.from_numpy(np.ascontiguousarray(image, dtype=np.float32)), size)
     hm = _resize(torch.from_numpy(np.ascontiguousarray(heat, dtype=np.float32))[None], size)[0]
     return heatmap_png_bytes(img, hm, vmax_for(threshold, hm))

@@ -6,20 +6,27 @@ from __future__ import annotations
 import base64
 import datetime as dt
 import hashlib
+import logging
 import time
 from dataclasses import dataclass
+from typing import BinaryIO
 
 import numpy as np
 import torch
+import torch.nn.functional as F
 
 from service.deps import ServiceState
 from service.files import HeatmapRecord, new_id
 from service.model_slot import LoadedModel
-from service.overlay import overlay_png
+from service.overlay import overlay_base, overlay_png, overlay_size
 from service.schemas import ImageInfo, InspectionCreated, InspectionOut, ModelRef, ReviewOut
 from service.settings import Caller
 from service.store import InspectionRecord, to_iso, utc_now
 from training.data import decode_image
+from training.detector import Prepared, verdict
+from training.errors import BadImage
+
+log = logging.getLogger("knowngood.service")
 
 PRUNE_EVERY = 50  # inspections between retention sweeps
 
@@ -27,13 +34,11 @@ PRUNE_EVERY = 50  # inspections between retention sweeps
 @dataclass(frozen=True)
 class Upload:
     name: str  # for error messages only; never a path
-    data: bytes
+    file: BinaryIO  # the spooled upload: read only once a decode slot is free
     part_id: str | None = None
 
 
-def verdict_for(score: float, threshold: float) -> str:
-    """The one convention: a part is flagged when score > threshold, otherwise it passes."""
-    return "flag" if score > threshold else "pass"
+verdict_for = verdict  # the one convention (training.detector.verdict): flagged when score > threshold
 
 
 def min_side(state: ServiceState, model: LoadedModel) -> int:
@@ -42,58 +47,100 @@ def min_side(state: ServiceState, model: LoadedModel) -> int:
 
 
 @dataclass(frozen=True)
-class Scored:
-    x: torch.Tensor  # (B, C, S, S) the model's view of each image
-    scores: np.ndarray  # (B,) higher = less like known-good
-    heats: torch.Tensor  # (B, S, S) at the working resolution
-    features: np.ndarray  # (B, F) for the drift window
+class Decoded:
+    """What is kept of one upload while the batch is scored: never the full-size float image."""
+
+    prepared: Prepared  # the model's view: the whole image at the working shape, or its tiles
+    view: np.ndarray  # (C, h, w) what the stored overlay is drawn on
+    height: int
+    width: int
+    sha256: str
+    data: bytes | None  # the file, only when images are kept
+    base: np.ndarray | None  # (C, h, w) the image at overlay size, only for ?heatmap=inline
 
 
 def inspect_uploads(
     state: ServiceState, model: LoadedModel, caller: Caller, uploads: list[Upload], *, station: str | None, inline: bool
 ) -> list[InspectionCreated]:
-    """Decodes, scores as one batch, stores. Raises BadImage / ImageTooLarge naming the image at fault, and then
-    nothing is stored."""
+    """Decodes (each in a decode slot), scores as one batch (in the scoring slot), stores. Raises BadImage /
+    ImageTooLarge naming the image at fault, or Problem(503) when the service is busy; then nothing is stored.
+    Everything that can fail happens before the rows are committed; after the commit only best-effort work."""
     start = time.perf_counter()
-    s = state.settings
-    side = min_side(state, model)
-    images = [decode_image(u.data, name=u.name, max_pixels=s.max_pixels, min_side=side) for u in uploads]
-    scored = _score(state, model, images)
+    decoded = [_decode(state, model, u, inline=inline) for u in uploads]
+    det = model.detector
+    x = torch.cat([d.prepared.x for d in decoded])  # (B, C, S, S): images, or all tiles of all images
+    with state.scoring.enter():
+        tile_scores, tile_heats, tile_features = det.score_and_embed(x)
+    scores, heats, features, start_row = [], [], [], 0
+    for d in decoded:
+        rows = slice(start_row, start_row + len(d.prepared.x))
+        start_row = rows.stop
+        score, heat, feature = det.finish(d.prepared, tile_scores[rows], tile_heats[rows], tile_features[rows])
+        if d.prepared.boxes is not None:  # a stitched full-resolution map: kept at overlay size, peaks kept
+            heat = F.adaptive_max_pool2d(heat[None, None], overlay_size(d.height, d.width))[0, 0]
+        scores.append(score)
+        heats.append(heat)
+        features.append(feature)
+    features = np.stack(features)
+    for u, score in zip(uploads, scores):
+        if not np.isfinite(score):
+            raise BadImage(f"{u.name}: the model gives a non-finite score for this image; it is not recorded")
     ids = [new_id() for _ in uploads]
-    for i, (inspection_id, upload) in enumerate(zip(ids, uploads)):
-        h, w = images[i].shape[-2:]
-        heat = HeatmapRecord(heat=scored.heats[i].numpy(), view=scored.x[i].numpy(), height=h, width=w)
-        state.files.put_heatmap(inspection_id, heat)
-        state.files.put_image(inspection_id, upload.data)
     now, elapsed = utc_now(), (time.perf_counter() - start) * 1000
     records = [
-        _record(ids[i], now, upload, images[i], float(scored.scores[i]), model, caller, station, elapsed)
-        for i, upload in enumerate(uploads)
+        _record(ids[i], now, u, decoded[i], float(scores[i]), model, caller, station, elapsed)
+        for i, u in enumerate(uploads)
     ]
+    out = [_created(r, decoded[i], heats[i].numpy(), inline=inline) for i, r in enumerate(records)]
     try:
+        for i, d in enumerate(decoded):
+            heat = HeatmapRecord(heat=heats[i].numpy(), view=d.view, height=d.height, width=d.width)
+            state.files.put_heatmap(ids[i], heat)
+            if d.data is not None:
+                state.files.put_image(ids[i], d.data)
         state.store.add_inspections(records=records)  # committed before the response goes out
     except BaseException:
         for inspection_id in ids:
             state.files.delete(inspection_id)
         raise
-    model.drift.add(scored.features)
-    for r in records:
-        state.metrics.observe_inspection(r.verdict, r.score)
-    return [_created(r, images[i], scored.heats[i].numpy(), inline=inline) for i, r in enumerate(records)]
+    _after_commit(state, model, records, features)
+    return out
 
 
-def _score(state: ServiceState, model: LoadedModel, images: list[np.ndarray]) -> Scored:
-    x = model.detector.prepare(images)  # (B, C, S, S)
-    with state.gate:
-        scores, heats, features = model.detector.score_and_embed(x)
-    return Scored(x=x, scores=scores, heats=heats, features=features)
+def _decode(state: ServiceState, model: LoadedModel, upload: Upload, *, inline: bool) -> Decoded:
+    s = state.settings
+    with state.decoding.enter():
+        data = upload.file.read()
+        image = decode_image(data, name=upload.name, max_pixels=s.max_pixels, min_side=min_side(state, model))
+        h, w = image.shape[-2:]
+        prepared = model.detector.prepare_one(image)
+        return Decoded(
+            prepared=prepared,
+            # what the stored overlay is drawn on: the model's view, or a tiled model's image at overlay size
+            view=prepared.x[0].numpy() if prepared.boxes is None else overlay_base(image),
+            height=int(h),
+            width=int(w),
+            sha256=hashlib.sha256(data).hexdigest(),
+            data=data if state.files.keep_images else None,
+            base=overlay_base(image) if inline else None,
+        )
+
+
+def _after_commit(state: ServiceState, model: LoadedModel, records: list[InspectionRecord], features) -> None:
+    """Drift window and metrics: the rows are committed, so a failure here is logged, never answered."""
+    try:
+        model.drift.add(features)
+        for r in records:
+            state.metrics.observe_inspection(r.verdict, r.score)
+    except Exception:
+        log.exception("after committing inspections %s", ", ".join(r.id for r in records))
 
 
 def _record(
     inspection_id: str,
     now: str,
     upload: Upload,
-    image: np.ndarray,
+    decoded: Decoded,
     score: float,
     model: LoadedModel,
     caller: Caller,
@@ -107,9 +154,9 @@ def _record(
         station=station,
         part_id=upload.part_id,
         caller=caller.name,
-        image_sha256=hashlib.sha256(upload.data).hexdigest(),
-        image_width=int(image.shape[-1]),
-        image_height=int(image.shape[-2]),
+        image_sha256=decoded.sha256,
+        image_width=decoded.width,
+        image_height=decoded.height,
         model_id=det.model_id,
         model_sha256=det.sha256,
         score=score,
@@ -119,10 +166,10 @@ def _record(
     )
 
 
-def _created(r: InspectionRecord, image: np.ndarray, heat: np.ndarray, *, inline: bool) -> InspectionCreated:
+def _created(r: InspectionRecord, decoded: Decoded, heat: np.ndarray, *, inline: bool) -> InspectionCreated:
     png = None
     if inline:
-        png = overlay_png(image, heat, height=r.image_height, width=r.image_width, threshold=r.threshold)
+        png = overlay_png(decoded.base, heat, height=r.image_height, width=r.image_width, threshold=r.threshold)
     return InspectionCreated(
         **inspection_out(r).model_dump(), heatmap_png=base64.b64encode(png).decode() if png else None
     )

@@ -16,6 +16,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.openapi.utils import get_openapi
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service.schemas import ProblemOut
 from training.errors import KnowngoodError
@@ -76,9 +77,36 @@ async def _validation(request: Request, exc: RequestValidationError) -> JSONResp
     return problem_response(422, detail, title="Invalid request", type_=TYPE_PREFIX + "invalid-request", errors=errors)
 
 
-async def _unexpected(request: Request, exc: Exception) -> JSONResponse:
-    log.exception("unexpected error on %s %s", request.method, request.url.path)
-    return problem_response(500, "an unexpected error; the service logged it and keeps running")
+class CrashGuard:
+    """Turns an unexpected exception into a 500 problem with `Connection: close` (the connection's state is not to
+    be trusted after it) and logs the traceback exactly once; the exception stops here, so the server does not log
+    it a second time. (Starlette's own `Exception` handler answers and then re-raises.)"""
+
+    def __init__(self, app: ASGIApp):
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        started = False
+
+        async def send_wrapper(message: Message) -> None:
+            nonlocal started
+            started = started or message["type"] == "http.response.start"
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_wrapper)
+        except Exception:
+            log.exception("unexpected error on %s %s", scope["method"], scope["path"])
+            if not started:  # else the server sees an unfinished response and closes the connection itself
+                response = problem_response(
+                    500,
+                    "an unexpected error; the service logged it and keeps running",
+                    headers={"Connection": "close"},
+                )
+                await response(scope, receive, send)
 
 
 def install(app: FastAPI) -> None:
@@ -86,7 +114,6 @@ def install(app: FastAPI) -> None:
     app.add_exception_handler(KnowngoodError, _domain)
     app.add_exception_handler(StarletteHTTPException, _http)
     app.add_exception_handler(RequestValidationError, _validation)
-    app.add_exception_handler(Exception, _unexpected)
     app.openapi = lambda: _openapi(app)
 
 

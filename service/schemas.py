@@ -9,7 +9,8 @@ from pydantic import BaseModel, ConfigDict, Field
 
 Verdict = Literal["pass", "flag"]
 Label = Literal["good", "defective"]
-Operator = Field(min_length=1, max_length=100, pattern=r"^[^\x00-\x1f]+$", examples=["line 3, shift B"])
+NO_CONTROL = r"^[^\x00-\x1f\x7f-\x9f]*$"  # text fields refuse C0 controls, DEL and C1 (log and CSV injection)
+Operator = Field(min_length=1, max_length=100, pattern=NO_CONTROL, examples=["line 3, shift B"])
 
 
 class ProblemOut(BaseModel):
@@ -78,7 +79,7 @@ class InspectionList(BaseModel):
 class ReviewIn(BaseModel):
     """An operator's confirmation of a verdict."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", strict=True)
 
     label: Label
     operator: str = Operator
@@ -87,11 +88,11 @@ class ReviewIn(BaseModel):
 class ThresholdIn(BaseModel):
     """A new threshold for the current model: recorded with who, when and why."""
 
-    model_config = ConfigDict(extra="forbid")
+    model_config = ConfigDict(extra="forbid", strict=True)  # false is not 0.0 and "2.5" is not 2.5
 
     threshold: float = Field(ge=0, allow_inf_nan=False, description="flag when score > threshold")
     operator: str = Operator
-    reason: str | None = Field(None, max_length=500)
+    reason: str | None = Field(None, max_length=500, pattern=NO_CONTROL)
 
 
 class ThresholdInfo(BaseModel):

@@ -4,6 +4,7 @@
 from __future__ import annotations
 
 import hashlib
+import re
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
@@ -49,6 +50,9 @@ class Settings(BaseSettings):
     max_pixels: int = Field(MAX_PIXELS, ge=1024)  # decompression-bomb guard, checked from the header (413)
     min_side: int = Field(MIN_SIDE, ge=1)  # also at least a quarter of the model's working size (422)
     max_batch: int = Field(16, ge=1, le=256)  # images per POST /v1/inspections/batch
+    max_decodes: int = Field(2, ge=1, le=64)  # images decoded at once (each up to 8 bytes x max_pixels)
+    max_queue: int = Field(8, ge=0, le=1024)  # requests waiting for a decode or the scoring pass; more: 503
+    keep_bundles: int = Field(5, ge=1)  # uploaded bundles kept besides the current and previous model
     torch_threads: int = Field(2, ge=1, le=64)
     onnx: bool = True  # score with ONNX Runtime (same graph, a few times faster on CPU)
     keep_images: bool = False  # also keep each uploaded image file (heatmaps are always kept)
@@ -113,6 +117,23 @@ def _check_token(token: str) -> None:
 def _label(role: str, token: str) -> str:
     """Names a token in the audit trail by a short fingerprint, never by the secret itself."""
     return f"{role}:{hashlib.sha256(token.encode()).hexdigest()[:8]}"
+
+
+_ADMIN_LABEL = re.compile(r"\badmin:[0-9a-f]{8}\b")
+
+
+def shown_to(viewer: Caller, value):
+    """`value` (text, or JSON-like dicts and lists of it) as `viewer` may see it: a station token does not see the
+    admin tokens' fingerprints (each is a 32-bit hint to the secret), only that an admin acted."""
+    if viewer.is_admin:
+        return value
+    if isinstance(value, str):
+        return _ADMIN_LABEL.sub("admin", value)
+    if isinstance(value, dict):
+        return {k: shown_to(viewer, v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [shown_to(viewer, v) for v in value]
+    return value
 
 
 def read_tokens_file(path: Path) -> list[tuple[Role, str, str | None]]:

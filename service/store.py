@@ -15,7 +15,7 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Protocol
 
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2  # 2: the serving table (what a restart serves)
 SCHEMA = """
 CREATE TABLE IF NOT EXISTS inspections (
     seq INTEGER PRIMARY KEY AUTOINCREMENT,
@@ -59,6 +59,12 @@ CREATE TABLE IF NOT EXISTS model_events (
     caller TEXT NOT NULL,
     operator TEXT,
     reason TEXT
+);
+CREATE TABLE IF NOT EXISTS serving (
+    id INTEGER PRIMARY KEY CHECK (id = 1),
+    current_sha256 TEXT NOT NULL,
+    previous_sha256 TEXT,
+    startup_sha256 TEXT
 );
 """
 
@@ -109,6 +115,15 @@ class ModelEvent:
     reason: str | None = None
 
 
+@dataclass(frozen=True)
+class Serving:
+    """What the service serves, kept with the model event that made it so: a restart serves the same."""
+
+    current_sha256: str
+    previous_sha256: str | None  # the rollback target
+    startup_sha256: str | None  # the command-line bundle at the last start: a different one there replaces current
+
+
 _COLUMNS = [f.name for f in fields(InspectionRecord)]
 _EVENT_COLUMNS = [f.name for f in fields(ModelEvent)]
 
@@ -129,7 +144,8 @@ class AuditStore(Protocol):
     ) -> list[InspectionRecord]: ...
     def iter_inspections(self, *, since: str | None, until: str | None) -> Iterator[InspectionRecord]: ...
     def add_review(self, *, inspection_id: str, label: str, operator: str, caller: str) -> InspectionRecord | None: ...
-    def add_model_event(self, *, event: ModelEvent) -> None: ...
+    def add_model_event(self, *, event: ModelEvent, serving: Serving | None = None) -> None: ...
+    def serving(self) -> Serving | None: ...
     def model_events(self, *, limit: int = 50) -> list[ModelEvent]: ...
     def latest_event(self, *, model_sha256: str, kind: str | None = None) -> ModelEvent | None: ...
     def expired_files(self, *, keep: int, before: str, limit: int = 500) -> list[str]: ...
@@ -240,9 +256,27 @@ def insert_review(
     return bool(cur.rowcount)
 
 
-def insert_model_event(conn: sqlite3.Connection, *, event: ModelEvent) -> None:
+def insert_model_event(conn: sqlite3.Connection, *, event: ModelEvent, serving: Serving | None = None) -> None:
+    """The event and, with it in one transaction, what is served from now on."""
     sql = f"INSERT INTO model_events ({', '.join(_EVENT_COLUMNS)}) VALUES ({', '.join('?' * len(_EVENT_COLUMNS))})"
-    conn.execute(sql, tuple(getattr(event, c) for c in _EVENT_COLUMNS))
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        conn.execute(sql, tuple(getattr(event, c) for c in _EVENT_COLUMNS))
+        if serving is not None:
+            conn.execute(
+                "INSERT OR REPLACE INTO serving (id, current_sha256, previous_sha256, startup_sha256) "
+                "VALUES (1, ?, ?, ?)",
+                (serving.current_sha256, serving.previous_sha256, serving.startup_sha256),
+            )
+        conn.execute("COMMIT")
+    except BaseException:
+        conn.execute("ROLLBACK")
+        raise
+
+
+def select_serving(conn: sqlite3.Connection) -> Serving | None:
+    row = conn.execute("SELECT current_sha256, previous_sha256, startup_sha256 FROM serving WHERE id = 1").fetchone()
+    return Serving(*row) if row else None
 
 
 def select_model_events(
@@ -332,8 +366,11 @@ class SqliteStore:
             return None
         return select_inspection(conn, inspection_id=inspection_id)
 
-    def add_model_event(self, *, event: ModelEvent) -> None:
-        insert_model_event(self._conn(), event=event)
+    def add_model_event(self, *, event: ModelEvent, serving: Serving | None = None) -> None:
+        insert_model_event(self._conn(), event=event, serving=serving)
+
+    def serving(self) -> Serving | None:
+        return select_serving(self._conn())
 
     def model_events(self, *, limit: int = 50) -> list[ModelEvent]:
         return select_model_events(self._conn(), limit=limit)

@@ -33,14 +33,14 @@ def tiny_good_images() -> list[np.ndarray]:
 
 @pytest.fixture(scope="session")
 def tiny_bundle(tmp_path_factory, tiny_good_images) -> Path:
-    """A 32 px grayscale bundle: untrained GAN weights, the pretrained perceptual net, standardised on the tiny
-    good images; loads in ms."""
+    """A 32 px grayscale bundle with every term: untrained GAN and feature-critic weights, the pretrained net,
+    the memory of half the tiny good images, standardised on all of them; loads in ms."""
     perceptual = load_pretrained()  # before seeding: the GAN weights below are the same with or without it
     torch.manual_seed(0)
-    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4)
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, memory_size=256)
     graph = bundle.new_graph(cfg, perceptual)
     x = torch.from_numpy(np.stack(tiny_good_images))
-    graph.fit_features(x)
+    graph.fit_features(x[:12])  # the memory holds other images than those the spread is measured on, as in train
     graph.fit_standardisation(x)
     det = Detector(
         cfg=cfg,

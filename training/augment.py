@@ -9,13 +9,13 @@ import torch.nn.functional as F
 
 
 def random_patches(x: torch.Tensor, n: int, patch: int, gen: torch.Generator) -> torch.Tensor:
-    """n random (C, patch, patch) crops from random images of x (N, C, S, S); patch == S returns whole images."""
+    """n random (C, patch, patch) crops from random images of x (N, C, H, W); patch >= H = W returns whole images."""
     idx = torch.randint(len(x), (n,), generator=gen)
-    s = x.shape[-1]
-    if patch >= s:
+    h, w = x.shape[-2:]
+    if patch >= h and patch >= w:
         return x[idx]
-    ys = torch.randint(s - patch + 1, (n,), generator=gen)
-    xs = torch.randint(s - patch + 1, (n,), generator=gen)
+    ys = torch.randint(h - patch + 1, (n,), generator=gen)
+    xs = torch.randint(w - patch + 1, (n,), generator=gen)
     return torch.stack([x[i, :, y : y + patch, c : c + patch] for i, y, c in zip(idx, ys, xs)])
 
 

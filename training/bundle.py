@@ -17,7 +17,7 @@ import torch
 from safetensors.torch import load as st_load
 from safetensors.torch import save as st_save
 
-from training import __version__
+from training import __version__, bundle_check
 from training.config import ModelConfig, from_dict
 from training.detector import Detector
 from training.errors import BadBundle, BadConfig
@@ -26,14 +26,16 @@ from training.perceptual import PerceptualNet
 from training.scoring import ScoringGraph
 
 FORMAT = "knowngood-bundle"
-FORMAT_VERSION = 3  # 3: model.residual_shift; 2: the perceptual term (graph.perceptual.*, graph.feature_*)
+# 4: the memory and adversarial terms (graph.memory*, graph.feature_critic.*), term weights, height, tile;
+# 3: model.residual_shift; 2: the perceptual term (graph.perceptual.*, graph.feature_*)
+FORMAT_VERSION = 4
 _ZIP_TIME = (2020, 1, 1, 0, 0, 0)  # fixed entry times: same content -> same bytes
 MAX_BUNDLE_BYTES = 512 * 1024 * 1024
 
 
 def new_graph(cfg: ModelConfig, perceptual: PerceptualNet | None = None) -> ScoringGraph:
-    """A scoring graph for cfg; without `perceptual`, an uninitialised one when cfg asks for the term."""
-    if perceptual is None and cfg.perceptual > 0:
+    """A scoring graph for cfg; without `perceptual`, an uninitialised one when a term of cfg uses it."""
+    if perceptual is None and cfg.pretrained:
         perceptual = PerceptualNet()
     return ScoringGraph(cfg, *build(cfg), perceptual=perceptual)
 
@@ -83,11 +85,15 @@ def from_bytes(data: bytes, *, name: str = "bundle") -> tuple[Detector, dict[str
         raise BadBundle(f"{name}: {len(data)} bytes is over the {MAX_BUNDLE_BYTES}-byte limit")
     manifest, weights = _read_zip(data, name)
     _check_manifest(manifest, name)
+    manifest["model_id"] = hashlib.sha256(weights).hexdigest()[:16]  # from the content, whatever the file claims
     model = dict(manifest["model"])
     if manifest["format_version"] < 2:
         model.setdefault("perceptual", 0.0)  # format 1 predates the perceptual term
     if manifest["format_version"] < 3:
         model.setdefault("residual_shift", 0)  # its standardisation was fitted on the plain residual
+    if manifest["format_version"] < 4:
+        model.setdefault("memory", 0.0)  # formats 1-3 predate the memory and the adversarial term
+        model.setdefault("adversarial", 0.0)
     try:
         cfg = from_dict(ModelConfig, model)
     except (BadConfig, TypeError) as exc:
@@ -108,42 +114,11 @@ def from_bytes(data: bytes, *, name: str = "bundle") -> tuple[Detector, dict[str
 
 
 def _read_zip(data: bytes, name: str) -> tuple[dict, bytes]:
-    try:
-        with zipfile.ZipFile(io.BytesIO(data)) as zf:
-            names = set(zf.namelist())
-            missing = {"manifest.json", "weights.safetensors"} - names
-            if missing:
-                raise BadBundle(f"{name}: not a knowngood bundle (missing {', '.join(sorted(missing))})")
-            manifest = json.loads(zf.read("manifest.json"))
-            weights = zf.read("weights.safetensors")
-    except BadBundle:
-        raise
-    except (zipfile.BadZipFile, EOFError, OSError, zipfile.LargeZipFile) as exc:
-        raise BadBundle(f"{name}: not a readable bundle, truncated or corrupt ({exc})") from None
-    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
-        raise BadBundle(f"{name}: manifest.json is not valid JSON ({exc})") from None
-    if not isinstance(manifest, dict):
-        raise BadBundle(f"{name}: manifest.json must hold an object")
-    return manifest, weights
+    return bundle_check.read_members(data, name)
 
 
 def _check_manifest(manifest: dict, name: str) -> None:
-    if manifest.get("format") != FORMAT:
-        raise BadBundle(f"{name}: not a knowngood bundle (format {manifest.get('format')!r})")
-    version = manifest.get("format_version")
-    if not isinstance(version, int):
-        raise BadBundle(f"{name}: format_version missing or not an integer")
-    if version > FORMAT_VERSION:
-        raise BadBundle(
-            f"{name}: bundle format {version} is newer than this software reads ({FORMAT_VERSION}); "
-            f"upgrade knowngood (this is {__version__}; the bundle was written by "
-            f"{manifest.get('software_version', 'an unknown version')})"
-        )
-    for key in ("model", "threshold", "weights"):
-        if not isinstance(manifest.get(key), dict):
-            raise BadBundle(f"{name}: manifest has no {key!r} section")
-    if not isinstance(manifest["threshold"].get("value"), (int, float)):
-        raise BadBundle(f"{name}: manifest threshold has no numeric value")
+    bundle_check.check_manifest(manifest, name, fmt=FORMAT, newest=FORMAT_VERSION)
 
 
 def _load_graph(graph: ScoringGraph, tensors: dict[str, torch.Tensor], name: str) -> None:
@@ -161,7 +136,7 @@ def _load_graph(graph: ScoringGraph, tensors: dict[str, torch.Tensor], name: str
 
 
 def _test_forward(det: Detector, name: str) -> None:
-    x = torch.full((1, det.cfg.channels, det.cfg.size, det.cfg.size), 0.5)
+    x = torch.full((1, det.cfg.channels, *det.cfg.shape), 0.5)
     scores, _ = det.score_batch(x)
     if not np.isfinite(scores).all():
         raise BadBundle(f"{name}: the model gives non-finite scores")

@@ -21,16 +21,31 @@ def _add_train(sub) -> None:
     p.add_argument("-o", "--output", type=Path, required=True, metavar="MODEL", help="bundle file to write")
     p.add_argument("--minutes", type=float, default=None, help="wall-time cap (default 10 without --steps)")
     p.add_argument("--steps", type=int, default=None, help="fix the work: same seed, data, steps = same bundle")
-    p.add_argument("--size", type=int, default=128, help="working resolution in px (multiple of 16)")
+    p.add_argument(
+        "--size",
+        type=int,
+        default=ModelConfig.size,
+        metavar="PX",
+        help="working resolution: the long side in px, a multiple of 16 up to 1024 (default 128); the short side "
+        "follows the images' aspect ratio",
+    )
+    p.add_argument(
+        "--tile",
+        type=int,
+        default=0,
+        metavar="PX",
+        help="inspect large images in tiles of PX native px (resized to --size), at the camera's own scale, "
+        "instead of shrinking the whole image; the heatmap is stitched back at full resolution",
+    )
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--recipe", choices=("joint", "two_stage"), default="joint")
     p.add_argument(
         "--residual-shift",
         type=int,
         choices=range(4),
-        default=ModelConfig.residual_shift,
+        default=None,
         metavar="PX",
-        help="px of fixture jitter the image residual forgives (default 1; 0 for fine random textures, see README)",
+        help="fix the px of fixture jitter the image residual forgives (default: chosen at train time, 0 or 1)",
     )
     p.add_argument("--target-false-reject", type=float, default=0.01, help="conformal threshold target")
     p.add_argument("--skip-bad", action="store_true", help="skip unreadable images and report them")

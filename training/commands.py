@@ -17,6 +17,7 @@ from training.config import ModelConfig, TrainConfig
 from training.data import fingerprint, list_images, load_folder, read_image
 from training.errors import BadConfig, BadDataset, BadImage
 from training.heatmap import heatmap_png_bytes
+from training.selection import term_summary
 from training.train import train_bundle
 from training.tuning import threshold_for_catch, threshold_for_false_reject
 
@@ -33,8 +34,13 @@ def train(args) -> int:
         print(f"knowngood: skipped {path}: {why}", file=sys.stderr)
     steps = args.steps if args.steps is not None else 10**9
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
-    model = ModelConfig(size=args.size, channels=good.channels, residual_shift=args.residual_shift)
+    model = ModelConfig(size=args.size, tile=args.tile, channels=good.channels)
+    shifts = TrainConfig.residual_shifts
+    if args.residual_shift is not None:  # fixed by the user: the choice of terms keeps it
+        model = dataclasses.replace(model, residual_shift=args.residual_shift)
+        shifts = (args.residual_shift,)
     tcfg = TrainConfig(
+        residual_shifts=shifts,
         steps=steps,
         minutes=minutes or 0.0,
         seed=args.seed,
@@ -47,6 +53,9 @@ def train(args) -> int:
         f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
         f"threshold {det.threshold:.3f} by {det.manifest['threshold']['method']})"
     )
+    choice = det.manifest["score"].get("choice", {})
+    if "chosen" in choice:
+        print(f"chose {term_summary(choice)}")
     return 0
 
 

@@ -14,6 +14,16 @@ from training.scoring import ScoringGraph, resize_maps
 
 
 @dataclass(frozen=True)
+class Prepared:
+    """One image as the scoring graph takes it."""
+
+    x: torch.Tensor  # (n, C, S, S): the whole image at the working shape (n = 1), or its n tiles
+    boxes: tuple[tuple[int, int], ...] | None  # (top, left) of each tile in the image; None: whole image
+    height: int  # the image's own size
+    width: int
+
+
+@dataclass(frozen=True)
 class Inspection:
     """One image's result. score: higher = less like known-good; verdict 'flag' when score > threshold."""
 
@@ -44,34 +54,106 @@ class Detector:
         return self.manifest.get("model_id", "unsaved")
 
     def prepare(self, images: list[np.ndarray]) -> torch.Tensor:
-        """(C, H, W) float arrays at any size -> one (B, C, S, S) batch in the model's colour mode."""
-        return to_model_input(images, size=self.cfg.size, channels=self.cfg.channels)
+        """(C, H, W) float arrays at any size -> one (B, C, h, w) batch at the working shape and colour mode
+        (whole-image models; a tiled model's tiles come from `tiles`)."""
+        return to_model_input(images, size=self.cfg.shape, channels=self.cfg.channels)
 
-    def score_batch(self, x: torch.Tensor, batch: int = 32) -> tuple[np.ndarray, torch.Tensor]:
-        """x (N, C, S, S) -> anomaly scores (N,) float64 (higher = less like known-good) and heatmaps (N, S, S)."""
+    def score_batch(self, x: torch.Tensor, batch: int | None = None) -> tuple[np.ndarray, torch.Tensor]:
+        """x (N, C, h, w) -> anomaly scores (N,) float64 (higher = less like known-good) and heatmaps (N, h, w)."""
         scores, heats, _ = self.score_and_embed(x, batch)
         return scores, heats
 
+    def batch_size(self) -> int:
+        """Images per forward pass: 32, fewer where the memory term's distance matrix (positions x entries)
+        would pass about 64 MB."""
+        h, w = self.cfg.shape
+        if self.cfg.memory <= 0:
+            return 32
+        per_image = (h // 4) * (w // 4) * self.cfg.memory_size * 4
+        return int(max(1, min(32, 64 * 2**20 // per_image)))
+
     @torch.inference_mode()
-    def score_and_embed(self, x: torch.Tensor, batch: int = 32) -> tuple[np.ndarray, torch.Tensor, np.ndarray]:
+    def score_and_embed(self, x: torch.Tensor, batch: int | None = None) -> tuple[np.ndarray, torch.Tensor, np.ndarray]:
         """`score_batch` plus each image's `embed` features (N, F) float64, from the same pass."""
         self.graph.eval()
         run = self.runner or self.graph
+        batch = batch or self.batch_size()
         outputs = [run(x[i : i + batch]) for i in range(0, len(x), batch)]
         scores, heats, embeddings = (torch.cat(parts) for parts in zip(*outputs))
         return scores.double().numpy(), heats, embeddings.double().numpy()
 
-    def inspect(self, images: list[np.ndarray], batch: int = 32) -> list[Inspection]:
-        """Scores native-resolution images as one batch; heatmaps come back at each image's own size."""
+    def score_images(self, images: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray], np.ndarray]:
+        """Native-resolution images (C, H, W) -> scores (N,) float64 (higher = less like known-good), heatmaps
+        as float32 (H, W) at each image's own resolution, and the drift embeddings (N, F). A tiled model scores
+        every tile at the camera's own scale: the heatmap is stitched back, the image score is its worst tile's."""
+        if not images:
+            return np.zeros(0), [], np.zeros((0, 0))
+        if not self.cfg.tile:
+            scores, heats, emb = self.score_and_embed(self.prepare(images))
+            return scores, resize_maps(heats, [im.shape[-2:] for im in images]), emb
+        results = [self._score_tiled(im) for im in images]
+        scores = np.array([r[0] for r in results])
+        return scores, [r[1] for r in results], np.stack([r[2] for r in results])
+
+    def _score_tiled(self, image: np.ndarray) -> tuple[float, np.ndarray, np.ndarray]:
+        prepared = self.prepare_one(image)
+        scores, heats, emb = self.score_and_embed(prepared.x)
+        score, heat, embedding = self.finish(prepared, scores, heats, emb)
+        return score, heat.numpy(), embedding
+
+    def prepare_one(self, image: np.ndarray) -> Prepared:
+        """One native-resolution image (C, H, W) -> what the scoring graph takes for it: the whole image at the
+        working shape, or (tiled model) its tiles."""
+        h, w = image.shape[-2:]
+        if not self.cfg.tile:
+            return Prepared(self.prepare([image]), None, h, w)
+        boxes = tile_boxes((h, w), self.cfg.tile)
+        return Prepared(self.prepare_tiles(image, boxes), tuple(boxes), h, w)
+
+    def finish(
+        self, prepared: Prepared, scores: np.ndarray, heats: torch.Tensor, emb: np.ndarray
+    ) -> tuple[float, torch.Tensor, np.ndarray]:
+        """The graph's outputs for one `Prepared` image -> (score, heatmap, embedding): the heatmap at the working
+        resolution for a whole-image model; a tiled model's stitched at the image's own resolution, its score
+        that of the worst tile, its embedding the tiles' mean."""
+        if prepared.boxes is None:
+            return float(scores[0]), heats[0], emb[0]
+        t = self.cfg.tile
+        maps = resize_maps(heats, [(t, t)] * len(prepared.boxes))
+        h, w = prepared.height, prepared.width
+        canvas = np.zeros((max(h, t), max(w, t)), dtype=np.float32)
+        for (y, x0), m in zip(prepared.boxes, maps):
+            np.maximum(canvas[y : y + t, x0 : x0 + t], m, out=canvas[y : y + t, x0 : x0 + t])
+        return float(scores.max()), torch.from_numpy(np.ascontiguousarray(canvas[:h, :w])), emb.mean(0)
+
+    def prepare_tiles(self, image: np.ndarray, boxes: list[tuple[int, int]]) -> torch.Tensor:
+        """(C, H, W) -> (n, C, S, S): the tiles at `boxes` (top, left), each `cfg.tile` native px, at the working
+        size; an image smaller than a tile is padded by reflection."""
+        t = self.cfg.tile
+        img = pad_to(image, t)
+        return to_model_input(
+            [img[:, y : y + t, x : x + t] for y, x in boxes], size=self.cfg.shape, channels=self.cfg.channels
+        )
+
+    def inspect(self, images: list[np.ndarray], batch: int | None = None) -> list[Inspection]:
+        """Scores native-resolution images; heatmaps come back at each image's own size."""
         if not images:
             return []
-        scores, heats = self.score_batch(self.prepare(images), batch=batch)
-        maps = resize_maps(heats, [im.shape[-2:] for im in images])
+        scores, maps, _ = self.score_images(images)
         t = self.threshold
         return [
-            Inspection(score=float(s), threshold=t, verdict="flag" if s > t else "pass", heatmap=m)
+            Inspection(score=float(s), threshold=t, verdict=verdict(float(s), t), heatmap=m)
             for s, m in zip(scores, maps)
         ]
+
+    def embed_images(self, images: list[np.ndarray]) -> np.ndarray:
+        """(N, F) drift embeddings of native-resolution images, as `score_images` gives them (a tiled model: the
+        mean over an image's tiles)."""
+        if not self.cfg.tile:
+            return self.embed(images)
+        return np.stack(
+            [self.embed(self.prepare_tiles(im, tile_boxes(im.shape[-2:], self.cfg.tile))).mean(0) for im in images]
+        )
 
     @torch.inference_mode()
     def embed(self, images: list[np.ndarray] | torch.Tensor, batch: int = 64) -> np.ndarray:
@@ -80,3 +162,35 @@ class Detector:
         self.graph.eval()
         parts = [self.graph.critic.pooled_features(x[i : i + batch]) for i in range(0, len(x), batch)]
         return torch.cat(parts).double().numpy()
+
+
+def verdict(score: float, threshold: float) -> str:
+    """The one rule: 'flag' when score > threshold, else 'pass' (higher score = less like known-good)."""
+    return "flag" if score > threshold else "pass"
+
+
+TILE_OVERLAP = 8  # tiles overlap by 1/8 of their side, so a defect on a tile's edge is whole in its neighbour
+
+
+def tile_boxes(shape: tuple[int, int], tile: int) -> list[tuple[int, int]]:
+    """(top, left) of the tiles covering an image of `shape` (H, W): a grid with stride 7/8 of the tile, the
+    last row and column flush with the image's edge."""
+
+    def starts(n: int) -> list[int]:
+        if n <= tile:
+            return [0]
+        stride = tile - tile // TILE_OVERLAP
+        out = list(range(0, n - tile, stride))
+        return out + [n - tile]
+
+    return [(y, x) for y in starts(shape[0]) for x in starts(shape[1])]
+
+
+def pad_to(image: np.ndarray, tile: int) -> np.ndarray:
+    """(C, H, W) padded by reflection (edge-repeat where too small to reflect) to at least tile x tile."""
+    h, w = image.shape[-2:]
+    if h >= tile and w >= tile:
+        return image
+    pad = ((0, 0), (0, max(0, tile - h)), (0, max(0, tile - w)))
+    mode = "reflect" if h > tile - h and w > tile - w else "edge"
+    return np.pad(image, pad, mode=mode)

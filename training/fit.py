@@ -64,7 +64,7 @@ class Fitter:
         self.opt_ge = torch.optim.Adam([*self.E.parameters(), *self.G.parameters()], **opt)
         self.step, self.history = 0, []
         self.best: tuple[float, int, dict] | None = None
-        self.patch = min(tcfg.patch or mcfg.size, mcfg.size)
+        self.patch = min(tcfg.patch or min(mcfg.shape), *mcfg.shape)
 
     def batch(self) -> torch.Tensor:
         x = random_patches(self.train_x, self.tcfg.batch, self.patch, self.gen)
@@ -132,7 +132,8 @@ class Fitter:
         recon = torch.cat([self.G(self.E(v[i : i + 64])) for i in range(0, len(v), 64)])
         rec = float((recon - v).abs().mean())
         gen = torch.Generator().manual_seed(1234)  # the same z every evaluation
-        z = torch.rand(len(v), self.mcfg.z_channels, self.mcfg.latent_side, self.mcfg.latent_side, generator=gen)
+        h, w = (side // 8 for side in self.mcfg.shape)
+        z = torch.rand(len(v), self.mcfg.z_channels, h, w, generator=gen)
         z = z.to(self.device)
         fake = torch.cat([self.G(z[i : i + 64] * 2 - 1) for i in range(0, len(z), 64)])
         real_f = self.D.pooled_features(v).double().numpy()

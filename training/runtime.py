@@ -13,16 +13,15 @@ from training.scoring import ScoringGraph
 
 
 def export_onnx(graph: ScoringGraph) -> bytes:
-    """The graph as ONNX bytes with a dynamic batch axis: x (B, C, S, S) -> score (B,), heat (B, S, S),
+    """The graph as ONNX bytes with a dynamic batch axis: x (B, C, H, W) -> score (B,), heat (B, H, W),
     embedding (B, F)."""
     graph.eval()
-    s = graph.cfg.size
     buf = io.BytesIO()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")  # the exporter's notes on shape inference are not for the user
         torch.onnx.export(
             graph,
-            (torch.rand(1, graph.cfg.channels, s, s),),
+            (torch.rand(1, graph.cfg.channels, *graph.cfg.shape),),
             buf,
             input_names=["x"],
             output_names=["score", "heat", "embedding"],
@@ -34,7 +33,7 @@ def export_onnx(graph: ScoringGraph) -> bytes:
 
 
 class OnnxRunner:
-    """Callable like the graph: (B, C, S, S) tensor -> (score, heat, embedding) tensors."""
+    """Callable like the graph: (B, C, H, W) tensor -> (score, heat, embedding) tensors."""
 
     def __init__(self, graph: ScoringGraph, threads: int = 0):
         import onnxruntime as ort

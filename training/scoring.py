@@ -15,6 +15,8 @@ import torch.nn.functional as F
 from torch import nn
 
 from training.config import ModelConfig
+from training.feature_critic import FeatureCritic
+from training.memory import as_patches, build_memory, local_average, nearest_distance
 from training.nets import Critic, Encoder, Generator
 from training.perceptual import PerceptualNet
 
@@ -62,15 +64,32 @@ def _shrunk_std(samples: torch.Tensor) -> torch.Tensor:
     return ((n * var + SHRINK_PRIOR * global_var) / (n + SHRINK_PRIOR)).sqrt().clamp(min=MIN_STD)
 
 
-class ScoringGraph(nn.Module):
-    """The whole inference path as one module (exportable to ONNX): x (B, C, S, S) in [0, 1] -> anomaly score
-    (B,), higher = less like known-good, standardised heatmap (B, S, S) and the drift embedding (B, F).
+TERMS = ("pixel", "critic", "perceptual", "memory", "adversarial")  # the order of the term maps, active ones only
 
-    Terms: (0) image residual (shift-tolerant, `pixel_residual`), (1) critic-feature residual, (2) when
-    `perceptual` is given, the perceptual term: how far the pretrained features of x lie from those of known-good
-    images at the same place. Each is standardised per pixel; the heatmap is their weighted maximum (weights 1,
-    kappa, perceptual), because the terms see different defects (the GAN terms texture flaws, the perceptual term
-    shape and shading ones) and a sum dilutes whichever one alone sees the defect (measured: README, "The method").
+
+def term_weights(cfg: ModelConfig) -> dict[str, float]:
+    """{term: weight in the heatmap's maximum} for the terms the model computes (weight > 0)."""
+    weights = {
+        "pixel": cfg.pixel,
+        "critic": cfg.kappa,
+        "perceptual": cfg.perceptual,
+        "memory": cfg.memory,
+        "adversarial": cfg.adversarial,
+    }
+    return {name: w for name, w in weights.items() if w > 0}
+
+
+class ScoringGraph(nn.Module):
+    """The whole inference path as one module (exportable to ONNX): x (B, C, H, W) in [0, 1] -> anomaly score
+    (B,), higher = less like known-good, standardised heatmap (B, H, W) and the drift embedding (B, F).
+
+    Terms (`TERMS`; a term with weight 0 is not computed): the GAN's image residual (shift-tolerant,
+    `pixel_residual`) and critic-feature residual; with the pretrained net, the per-position term (how far the
+    features of x lie from those of known-good images at the same place), the position-free term (how far
+    each patch's features lie from the nearest known-good patch anywhere: `memory.py`) and the feature-space
+    adversarial term (a critic on the pretrained features: `feature_critic.py`). Each is standardised
+    per pixel; the heatmap is their weighted maximum, because the terms see different defects and a sum
+    dilutes whichever one alone sees the defect (measured: README, "The method").
     """
 
     def __init__(
@@ -80,24 +99,32 @@ class ScoringGraph(nn.Module):
         generator: Generator,
         critic: Critic,
         perceptual: PerceptualNet | None = None,
+        feature_critic: FeatureCritic | None = None,
     ):
         super().__init__()
-        assert (perceptual is None) == (cfg.perceptual == 0), "a perceptual net exactly when cfg weights its term"
+        assert (perceptual is None) == (not cfg.pretrained), "a pretrained net exactly when a term uses it"
         self.cfg = cfg
         self.encoder, self.generator, self.critic, self.perceptual = encoder, generator, critic, perceptual
+        if cfg.adversarial > 0:
+            self.feature_critic = feature_critic or FeatureCritic(perceptual.channels)
         self.register_buffer("kernel", gaussian_kernel(cfg.smooth_sigma), persistent=False)
-        weights = [1.0, cfg.kappa] + ([cfg.perceptual] if perceptual is not None else [])
-        self.register_buffer("weights", torch.tensor(weights).view(1, -1, 1, 1), persistent=False)
-        s, n_terms = cfg.size, len(weights)
+        self.terms = term_weights(cfg)
+        self.register_buffer("weights", torch.tensor(list(self.terms.values())).view(1, -1, 1, 1), persistent=False)
+        h, w = cfg.shape
         if perceptual is not None:
-            # per-position mean and std of the pretrained features of known-good images, at 1/4 of the side
-            c, side = perceptual.channels, perceptual.side(s)
-            self.register_buffer("feature_mean", torch.zeros(c, side, side))
-            self.register_buffer("feature_std", torch.ones(c, side, side))
+            fh, fw = perceptual.side(h), perceptual.side(w)
+            if cfg.perceptual > 0:
+                # per-position mean and std of the pretrained features of known-good images, at 1/4 of the side
+                self.register_buffer("feature_mean", torch.zeros(perceptual.channels, fh, fw))
+                self.register_buffer("feature_std", torch.ones(perceptual.channels, fh, fw))
+            if cfg.memory > 0:
+                self.register_buffer("memory", torch.zeros(cfg.memory_size, perceptual.channels))
+                self.register_buffer("memory_sq", torch.zeros(cfg.memory_size))
+                self.register_buffer("memory_centre", torch.zeros(perceptual.channels))
         # per-pixel mean and std of the smoothed term maps on held-out known-good images
-        self.register_buffer("term_mean", torch.zeros(n_terms, s, s))
-        self.register_buffer("term_std", torch.ones(n_terms, s, s))
-        self.top_k = max(1, int(round(cfg.top_fraction * s * s)))
+        self.register_buffer("term_mean", torch.zeros(len(self.terms), h, w))
+        self.register_buffer("term_std", torch.ones(len(self.terms), h, w))
+        self.top_k = max(1, int(round(cfg.top_fraction * h * w)))
 
     def _smooth(self, m: torch.Tensor) -> torch.Tensor:
         k = self.kernel
@@ -109,23 +136,35 @@ class ScoringGraph(nn.Module):
         return m.reshape(b, c, h, w)
 
     def term_maps(self, x: torch.Tensor) -> torch.Tensor:
+        """(B, T, H, W) smoothed raw term maps, in the order of `self.terms`."""
         return self._terms(x)[0]
 
     def _terms(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """(B, T, S, S) smoothed raw terms: |x - G(E(x))| at the best-matching reconstruction pixel within
-        `residual_shift` px, |f(x) - f(G(E(x)))|² and, with a perceptual net, the mean squared standardised
-        deviation of its features from the known-good ones at each position; and f(x), which the embedding
-        continues from."""
+        """(B, T, H, W) smoothed raw terms: |x - G(E(x))| at the best-matching reconstruction pixel within
+        `residual_shift` px, |f(x) - f(G(E(x)))|², the mean squared standardised deviation of the pretrained
+        features from the known-good ones at each position, and the distance of each patch's features to the
+        nearest known-good patch; and f(x), which the embedding continues from."""
         size = x.shape[-2:]
-        recon = self.generator(self.encoder(x))  # (B, C, S, S)
-        pixel = pixel_residual(x, recon, self.cfg.residual_shift)  # (B, 1, S, S)
         fx = self.critic.features(x)
-        feat = (fx - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
-        terms = [pixel, F.interpolate(feat, size=size, mode="bilinear", align_corners=False)]  # (B, 1, S, S) each
+        maps = []
+        if "pixel" in self.terms or "critic" in self.terms:
+            recon = self.generator(self.encoder(x))  # (B, C, H, W)
+            if "pixel" in self.terms:
+                maps.append(pixel_residual(x, recon, self.cfg.residual_shift))  # (B, 1, H, W)
+            if "critic" in self.terms:
+                feat = (fx - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
+                maps.append(F.interpolate(feat, size=size, mode="bilinear", align_corners=False))
         if self.perceptual is not None:
-            dev = self._deviation(self.perceptual(x))  # (B, 1, S/4, S/4)
-            terms.append(F.interpolate(dev, size=size, mode="bilinear", align_corners=False))  # (B, 1, S, S)
-        return self._smooth(torch.cat(terms, 1)), fx
+            phi = self.perceptual(x)  # (B, F, H/4, W/4)
+            coarse = []
+            if "perceptual" in self.terms:
+                coarse.append(self._deviation(phi))
+            if "memory" in self.terms:
+                coarse.append(nearest_distance(local_average(phi), self.memory, self.memory_sq, self.memory_centre))
+            if "adversarial" in self.terms:
+                coarse.append(self.feature_critic(phi))
+            maps.append(F.interpolate(torch.cat(coarse, 1), size=size, mode="bilinear", align_corners=False))
+        return self._smooth(torch.cat(maps, 1)), fx
 
     def _deviation(self, feats: torch.Tensor) -> torch.Tensor:
         """(B, F, h, w) features -> (B, 1, h, w): the mean squared standardised distance to the known-good
@@ -136,37 +175,65 @@ class ScoringGraph(nn.Module):
         stds = shifted_views(self.feature_std[None], r)
         return _min_over([((feats - m) / s).pow(2).mean(1, keepdim=True) for m, s in zip(means, stds)])
 
+    def heat_from(self, maps: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Raw term maps (B, T, H, W) -> (score (B,), heatmap (B, H, W)); higher = less like known-good."""
+        z = (maps - self.term_mean) / self.term_std  # (B, T, H, W)
+        heat = (z * self.weights).amax(1).clamp(min=0)  # (B, H, W): the strongest evidence at each pixel
+        score = heat.flatten(1).topk(self.top_k, dim=1).values.mean(1)  # (B,)
+        return score, heat
+
     def forward(self, x: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor]:
-        """-> score (B,), heat (B, S, S) and the pooled critic features (B, F) that drift is measured in, which
+        """-> score (B,), heat (B, H, W) and the pooled critic features (B, F) that drift is measured in, which
         come almost free here: they continue from the f(x) the feature residual already computed."""
         maps, fx = self._terms(x)
-        z = (maps - self.term_mean) / self.term_std  # (B, T, S, S)
-        heat = (z * self.weights).amax(1).clamp(min=0)  # (B, S, S): the strongest evidence at each pixel
-        score = heat.flatten(1).topk(self.top_k, dim=1).values.mean(1)  # (B,)
+        score, heat = self.heat_from(maps)
         return score, heat, self.critic.pool_from(fx)
 
     @torch.no_grad()
-    def fit_features(self, good: torch.Tensor, batch: int = 64) -> None:
-        """Sets the perceptual term's per-position feature statistics from known-good images (N, C, S, S).
+    def pretrained_features(self, x: torch.Tensor, batch: int = 32) -> torch.Tensor:
+        """(N, C, H, W) images -> (N, F, H/4, W/4) frozen pretrained features."""
+        return torch.cat([self.perceptual(x[i : i + batch]) for i in range(0, len(x), batch)])
+
+    @torch.no_grad()
+    def fit_features(
+        self, good: torch.Tensor, batch: int = 32, seed: int = 0, feats: torch.Tensor | None = None
+    ) -> None:
+        """Sets the pretrained terms' reference from known-good images (N, C, H, W): the per-position feature
+        statistics and the coreset memory of patch features (`feats`: their pretrained features, if at hand).
 
         The pretrained net never learns from them, so the training images themselves may be used here."""
         if self.perceptual is None:
             return
-        feats = torch.cat([self.perceptual(good[i : i + batch]) for i in range(0, len(good), batch)])
-        self.feature_mean.copy_(feats.mean(0))
-        self.feature_std.copy_(_shrunk_std(feats))
+        feats = self.pretrained_features(good, batch) if feats is None else feats
+        if "perceptual" in self.terms:
+            self.feature_mean.copy_(feats.mean(0))
+            self.feature_std.copy_(_shrunk_std(feats))
+        if "memory" in self.terms:
+            patches = torch.cat([as_patches(local_average(feats[i : i + batch])) for i in range(0, len(feats), batch)])
+            memory = build_memory(patches, self.cfg.memory_size, seed=seed)
+            if len(memory) < self.cfg.memory_size:  # fewer patches than places: repeat, the minimum is the same
+                memory = memory[torch.arange(self.cfg.memory_size) % len(memory)]
+            centre = memory.mean(0)
+            self.memory_centre.copy_(centre)
+            self.memory.copy_(memory - centre)
+            self.memory_sq.copy_((self.memory * self.memory).sum(1))
 
     @torch.no_grad()
-    def fit_standardisation(self, good: torch.Tensor, batch: int = 64) -> None:
-        """Sets the per-pixel statistics from held-out known-good images (N, C, S, S), never training images."""
+    def fit_standardisation(self, good: torch.Tensor, batch: int = 32) -> None:
+        """Sets the per-pixel statistics from held-out known-good images (N, C, H, W), never training images.
+        A tiled model's tiles come from anywhere in the image, so its statistics are one per term, not per pixel."""
         self.eval()
         maps = torch.cat([self.term_maps(good[i : i + batch]) for i in range(0, len(good), batch)])
-        self.term_mean.copy_(maps.mean(0))
-        self.term_std.copy_(_shrunk_std(maps))
+        mean, std = maps.mean(0), _shrunk_std(maps)
+        if self.cfg.tile:
+            mean = mean.mean((1, 2), keepdim=True).expand_as(mean)
+            std = maps.transpose(0, 1).flatten(1).std(1).clamp(min=MIN_STD)[:, None, None].expand_as(std)
+        self.term_mean.copy_(mean)
+        self.term_std.copy_(std)
 
 
 def resize_maps(heat: torch.Tensor, sizes: list[tuple[int, int]]) -> list[np.ndarray]:
-    """Working-resolution maps (B, S, S) to float32 arrays at each input image's own (H, W)."""
+    """Working-resolution maps (B, h, w) to float32 arrays at each input image's own (H, W)."""
     out = []
     for m, (h, w) in zip(heat, sizes):
         if (h, w) != tuple(m.shape):

@@ -2,74 +2,151 @@
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from pathlib import Path
 
+import numpy as np
 import torch
 
 from training import bundle
 from training.config import ModelConfig, TrainConfig, to_dict
-from training.data import ImageSet, to_model_input
-from training.detector import Detector
+from training.data import ImageSet, to_model_input, working_shape
+from training.detector import Detector, pad_to, tile_boxes
 from training.errors import BadDataset
+from training.feature_critic import fit_feature_critic
 from training.fit import fit, split_indices
 from training.frechet import gaussian_stats
 from training.perceptual import load_pretrained
 from training.scoring import ScoringGraph
+from training.selection import choose_terms
 from training.tuning import conformal_threshold
 
 MIN_IMAGES = 12
 SCORE_DEFINITION = (
-    "heatmap = max(0, z_pixel, kappa * z_feature, perceptual * z_perceptual), where z_* are smoothed maps "
-    "standardised per pixel against held-out known-good images: the image residual |x - G(E(x))| at the "
-    "best-matching reconstruction pixel within `residual_shift` px, the "
-    "critic-feature residual |f(x) - f(G(E(x)))|^2 and the perceptual term, the mean squared standardised "
-    "deviation of pretrained EfficientNet-Lite0 features of x from those of the known-good images at the "
-    "best-matching nearby position; score = mean of the top `top_fraction` of the heatmap. Higher = less like "
-    "known-good; flag when score > threshold."
+    "heatmap = max(0, pixel * z_pixel, kappa * z_critic, perceptual * z_perceptual, memory * z_memory) over the "
+    "terms with a positive weight, where z_* are smoothed maps standardised per pixel (per term for a tiled model) "
+    "against held-out known-good images: the image residual |x - G(E(x))| at the best-matching reconstruction "
+    "pixel within `residual_shift` px, the critic-feature residual |f(x) - f(G(E(x)))|^2, the per-position term "
+    "(mean squared standardised deviation of pretrained EfficientNet-Lite0 features of x from those of the "
+    "known-good images at the best-matching nearby position) and the position-free term (distance of each "
+    "patch's features to the nearest known-good patch in a coreset memory); score = mean of the top "
+    "`top_fraction` of the heatmap (tiled: of the worst tile). Higher = less like known-good; flag when "
+    "score > threshold. The weights are chosen at train time on synthetic defects (score.choice)."
 )
 
 
 def train_bundle(
     good: ImageSet, out: Path, *, model: ModelConfig, train: TrainConfig, progress: bool = True, resume: bool = True
 ) -> Detector:
-    """Trains on `good`, keeps `train.holdout_share` of it out for standardisation and the conformal threshold,
-    and writes the bundle to `out`. A checkpoint beside `out` lets an interrupted run resume."""
+    """Trains on `good`, keeps `train.holdout_share` of it out for standardisation, the choice of terms and the
+    conformal threshold, and writes the bundle to `out`. A checkpoint beside `out` lets an interrupted run resume.
+
+    `model.size` is the working long side (the short side follows the images' aspect ratio); with `model.tile`
+    the networks see tiles of that many native pixels, so a large image keeps the camera's own scale."""
     if len(good.images) < MIN_IMAGES:
         raise BadDataset(f"need at least {MIN_IMAGES} known-good images to train, got {len(good.images)}")
-    perceptual = load_pretrained() if model.perceptual > 0 else None  # before the fit: fail fast without it
-    x = to_model_input(good.images, size=model.size, channels=model.channels)
-    fit_idx, std_idx, cal_idx = split_indices(len(x), train.holdout_share, train.seed)
-    hold = torch.cat([x[std_idx], x[cal_idx]])
+    perceptual = load_pretrained() if model.pretrained else None  # before the fit: fail fast without it
+    model = _with_working_shape(model, good.images)
+    fit_idx, std_idx, cal_idx = split_indices(len(good.images), train.holdout_share, train.seed)
+    sets = {
+        name: _inputs(good.images, idx, model, train.seed)
+        for name, idx in (("fit", fit_idx), ("std", std_idx), ("cal", cal_idx))
+    }
+    hold = torch.cat([sets["std"], sets["cal"]])
     ckpt = Path(str(out) + ".ckpt")
     if not resume and ckpt.exists():
         ckpt.unlink()
-    result = fit(x[fit_idx], hold, model, train, checkpoint=ckpt, progress=progress)
-    graph = ScoringGraph(model, result.encoder, result.generator, result.critic, perceptual=perceptual)
-    graph.fit_features(x[fit_idx])
-    graph.fit_standardisation(x[std_idx])
+    result = fit(sets["fit"], hold, model, train, checkpoint=ckpt, progress=progress)
+    nets = (result.encoder, result.generator, result.critic)
+    feature_critic = None
+    if model.adversarial > 0:
+        if progress:
+            print("training the feature-space critic ...", flush=True)
+        phi = torch.cat([perceptual(sets["fit"][i : i + 32]) for i in range(0, len(sets["fit"]), 32)])
+        feature_critic = fit_feature_critic(phi, steps=train.critic_feature_steps, seed=train.seed)
+        del phi
+    choice = None
+    if train.choose_terms:
+        if progress:
+            print("choosing the terms on synthetic defects ...", flush=True)
+        choice = choose_terms(
+            model,
+            nets,
+            perceptual,
+            fit_x=sets["fit"],
+            std_x=sets["std"],
+            good_x=sets["cal"],
+            shifts=train.residual_shifts,
+            feature_critic=feature_critic,
+            seed=train.seed,
+        )
+        model = choice.cfg
+    graph = ScoringGraph(
+        model, *nets, perceptual=perceptual if model.pretrained else None, feature_critic=feature_critic
+    )
+    if choice is not None:
+        choice.adopt_reference(graph)  # the candidates' fitted memory and statistics: no second coreset
+    else:
+        graph.fit_features(sets["fit"], seed=train.seed)
+    graph.fit_standardisation(sets["std"])
     det = Detector(cfg=model, graph=graph, threshold=float("inf"))
-    cal_scores, _ = det.score_batch(x[cal_idx])
-    choice = conformal_threshold(cal_scores, train.target_false_reject)
-    det.threshold = float(choice.value)
-    train_feats = det.embed(x[fit_idx])
+    cal_scores, _, _ = det.score_images([good.images[i] for i in cal_idx])
+    threshold = conformal_threshold(cal_scores, train.target_false_reject)
+    det.threshold = float(threshold.value)
+    train_feats = det.embed_images([good.images[i] for i in fit_idx])
     mu, sigma = gaussian_stats(train_feats)
-    det.manifest = _manifest(good, model, train, result, choice, len(fit_idx), len(std_idx), len(cal_idx))
-    frechet = {"train_mu": mu, "train_sigma": sigma, "holdout_features": det.embed(hold)}
+    counts = (len(fit_idx), len(std_idx), len(cal_idx))
+    det.manifest = _manifest(good, model, train, result, threshold, counts, choice)
+    held = [good.images[i] for i in np.r_[std_idx, cal_idx]]
+    frechet = {"train_mu": mu, "train_sigma": sigma, "holdout_features": det.embed_images(held)}
     bundle.save(det, frechet, out)
     if ckpt.exists():
         ckpt.unlink()
     return bundle.load(out)[0]  # what was written, with its model id and sha256
 
 
-def _manifest(good, model, train, result, choice, n_fit, n_std, n_cal) -> dict:
+MAX_TILES = 4000  # tiles per split: enough to cover a part's variation, bounded memory for multi-megapixel sets
+
+
+def _with_working_shape(model: ModelConfig, images: list) -> ModelConfig:
+    if model.tile:
+        return dataclasses.replace(model, height=0)
+    h, w = working_shape(images, model.size)
+    return dataclasses.replace(model, size=w, height=0 if h == w else h)
+
+
+def _inputs(images: list, idx: np.ndarray, model: ModelConfig, seed: int) -> torch.Tensor:
+    """The networks' inputs from the images at `idx`: whole images at the working shape, or (tiled model) the
+    tiles of each image at the camera's scale, a random `MAX_TILES` of them when there are more."""
+    chosen = [images[i] for i in idx]
+    if not model.tile:
+        return to_model_input(chosen, size=model.shape, channels=model.channels)
+    boxes = [(k, box) for k, im in enumerate(chosen) for box in tile_boxes(im.shape[-2:], model.tile)]
+    if len(boxes) > MAX_TILES:
+        keep = np.sort(np.random.default_rng(seed).choice(len(boxes), MAX_TILES, replace=False))
+        boxes = [boxes[k] for k in keep]
+    t = model.tile
+    crops = []
+    for k, (y, x) in boxes:
+        crops.append(pad_to(chosen[k], t)[:, y : y + t, x : x + t])
+    return to_model_input(crops, size=model.shape, channels=model.channels)
+
+
+def _manifest(good, model, train, result, choice, counts, terms) -> dict:
+    n_fit, n_std, n_cal = counts
     return {
         "created": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
         "preprocessing": {
             "size": model.size,
             "channels": model.channels,
             "colour_mode": "RGB" if model.channels == 3 else "grayscale (ITU-R BT.601 luma)",
-            "resize": "stretch to size x size, bilinear with antialiasing",
+            "resize": (
+                f"tiles of {model.tile} px (overlap 1/8) resized to {model.size} x {model.size}"
+                if model.tile
+                else f"resize to {model.shape[0]} x {model.shape[1]} (the training images' aspect ratio), bilinear, "
+                "antialiased"
+            ),
             "range": [0.0, 1.0],
         },
         "model": to_dict(model),
@@ -77,6 +154,9 @@ def _manifest(good, model, train, result, choice, n_fit, n_std, n_cal) -> dict:
             "definition": SCORE_DEFINITION,
             "kappa": model.kappa,
             "perceptual": model.perceptual,
+            "pixel": model.pixel,
+            "memory": model.memory,
+            "choice": terms.evidence if terms is not None else {"method": "set by the caller"},
             "unit": "held-out known-good std",
             "direction": "higher = less like known-good; flagged when score > threshold",
         },

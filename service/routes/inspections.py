@@ -2,24 +2,37 @@
 
 from __future__ import annotations
 
-import datetime as dt
 import time
 from typing import Annotated, Literal
 
-from fastapi import APIRouter, BackgroundTasks, File, Form, Query, Response, UploadFile
+from fastapi import APIRouter, BackgroundTasks, Depends, File, Form, Query, Request, Response, UploadFile
+from fastapi.exceptions import RequestValidationError
+from pydantic import StringConstraints
 
 from service import problems
-from service.deps import CurrentModel, ServiceState, State, StationCaller
+from service.deps import CurrentModel, ServiceState, State, StationCaller, Window
 from service.overlay import overlay_png
 from service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due
 from service.problems import Problem
-from service.schemas import BatchCreated, InspectionCreated, InspectionList, InspectionOut, ReviewIn, Verdict
-from service.store import InspectionRecord, to_iso
+from service.schemas import (
+    NO_CONTROL,
+    BatchCreated,
+    InspectionCreated,
+    InspectionList,
+    InspectionOut,
+    ReviewIn,
+    Verdict,
+)
+from service.store import InspectionRecord
 from training.data import decode_image
 from training.errors import KnowngoodError
 
 router = APIRouter(prefix="/v1/inspections", tags=["inspections"])
-Text = Annotated[str | None, Form(max_length=200, pattern=r"^[^\x00-\x1f]*$")]
+Text = Annotated[str | None, Form(max_length=200, pattern=NO_CONTROL)]
+PartIds = Annotated[
+    list[Annotated[str, StringConstraints(max_length=200, pattern=NO_CONTROL)]] | None,
+    Form(description="none, or one per image in order"),
+]
 Inline = Annotated[Literal["inline"] | None, Query(description="'inline' adds the overlay PNG as base64")]
 IMAGE_HELP = "PNG, JPEG, BMP or TIFF (8 or 16 bit; gray, RGB or CMYK); checked by decoding, not by name"
 
@@ -36,12 +49,31 @@ def _find(state: ServiceState, inspection_id: str) -> InspectionRecord:
     return record
 
 
+def _once(*names: str):
+    """A dependency refusing a second copy of a single-valued form field (which FastAPI would silently drop)."""
+
+    async def check(request: Request) -> None:
+        form = await request.form()  # already parsed for the route: this reads the cached form
+        twice = [(n, len(form.getlist(n))) for n in names if len(form.getlist(n)) > 1]
+        if twice:
+            raise RequestValidationError(
+                [{"loc": ("body", n), "msg": f"sent {k} times; send it once", "type": "value_error"} for n, k in twice]
+            )
+
+    return Depends(check)
+
+
 def _after(state: ServiceState, background: BackgroundTasks, count: int) -> None:
     if prune_due(state, count):
         background.add_task(prune, state)
 
 
-@router.post("", response_model=InspectionCreated, responses=problems.responses(401, 413, 422, 503))
+@router.post(
+    "",
+    response_model=InspectionCreated,
+    responses=problems.responses(400, 401, 413, 422, 503),
+    dependencies=[_once("image", "part_id", "station")],
+)
 def create_inspection(
     state: State,
     caller: StationCaller,
@@ -53,20 +85,25 @@ def create_inspection(
     heatmap: Inline = None,
 ) -> InspectionCreated:
     """Inspect one image: verdict, anomaly score and threshold, committed to the audit store before the reply."""
-    upload = Upload(name=_name(image, "image"), data=image.file.read(), part_id=part_id)
+    upload = Upload(name=_name(image, "image"), file=image.file, part_id=part_id)
     [out] = inspect_uploads(state, model, caller, [upload], station=station, inline=heatmap == "inline")
     _after(state, background, 1)
     return out
 
 
-@router.post("/batch", response_model=BatchCreated, responses=problems.responses(401, 413, 422, 503))
+@router.post(
+    "/batch",
+    response_model=BatchCreated,
+    responses=problems.responses(400, 401, 413, 422, 503),
+    dependencies=[_once("station")],
+)
 def create_batch(
     state: State,
     caller: StationCaller,
     model: CurrentModel,
     background: BackgroundTasks,
     images: Annotated[list[UploadFile], File(description=f"one field per image; {IMAGE_HELP}")],
-    part_id: Annotated[list[str] | None, Form(description="none, or one per image in order")] = None,
+    part_id: PartIds = None,
     station: Text = None,
     heatmap: Inline = None,
 ) -> BatchCreated:
@@ -79,7 +116,7 @@ def create_batch(
     if parts and len(parts) != len(images):
         raise Problem(422, f"{len(parts)} part_id fields for {len(images)} images: send none or one per image")
     uploads = [
-        Upload(name=_name(f, f"images[{i}]"), data=f.file.read(), part_id=parts[i] if parts else None)
+        Upload(name=_name(f, f"images[{i}]"), file=f.file, part_id=parts[i] if parts else None)
         for i, f in enumerate(images)
     ]
     items = inspect_uploads(state, model, caller, uploads, station=station, inline=heatmap == "inline")
@@ -91,19 +128,14 @@ def create_batch(
 def list_inspections(
     state: State,
     caller: StationCaller,
+    window: Window,
     verdict: Verdict | None = None,
-    since: dt.datetime | None = None,
-    until: dt.datetime | None = None,
     reviewed: Annotated[bool | None, Query(description="false = awaiting review")] = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 50,
 ) -> InspectionList:
     """Recent inspections, newest first; verdict=flag&reviewed=false is the review queue."""
     records = state.store.list_inspections(
-        verdict=verdict,
-        since=to_iso(since) if since else None,
-        until=to_iso(until) if until else None,
-        reviewed=reviewed,
-        limit=limit,
+        verdict=verdict, since=window.since, until=window.until, reviewed=reviewed, limit=limit
     )
     return InspectionList(items=[inspection_out(r) for r in records], count=len(records))
 

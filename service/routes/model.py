@@ -9,16 +9,16 @@ from fastapi import APIRouter, File, Query, UploadFile
 from service import problems
 from service.deps import AdminCaller, CurrentModel, ServiceState, State, StationCaller
 from service.model_slot import LoadedModel, model_event, prepare
+from service.restore import keep_bundles
 from service.schemas import ModelEventList, ModelEventOut, ModelOut, ModelRef, ThresholdIn, ThresholdInfo
-from service.settings import Caller
+from service.settings import Caller, shown_to
 
 router = APIRouter(prefix="/v1/model", tags=["model"])
 
 
-def model_out(state: ServiceState, m: LoadedModel) -> ModelOut:
+def model_out(m: LoadedModel, previous: LoadedModel | None, viewer: Caller) -> ModelOut:
     det = m.detector
-    t = det.manifest.get("threshold", {})
-    previous = state.slot.previous
+    t = shown_to(viewer, det.manifest.get("threshold", {}))
     return ModelOut(
         id=det.model_id,
         sha256=det.sha256,
@@ -30,20 +30,27 @@ def model_out(state: ServiceState, m: LoadedModel) -> ModelOut:
         ),
         loaded_at=m.loaded_at,
         source=m.source,
-        manifest=det.manifest,
+        manifest={**det.manifest, "threshold": t},
         previous=ModelRef(id=previous.detector.model_id, sha256=previous.detector.sha256) if previous else None,
     )
 
 
+def _respond(viewer: Caller):
+    """The slot's `respond`: the response is built before the change is recorded or made (all-or-nothing)."""
+    return lambda new, previous: model_out(new, previous, viewer)
+
+
 def _log(state: ServiceState, kind: str, caller: Caller, **extra):
-    """A `record` callback for the slot: the event is in the audit store before the swap happens."""
-    return lambda old, new: state.store.add_model_event(event=model_event(kind, new, caller.name, **extra))
+    """A `record` callback for the slot: the event and what is served are in the audit store before the swap."""
+    return lambda old, new, serving: state.store.add_model_event(
+        event=model_event(kind, new, caller.name, **extra), serving=serving
+    )
 
 
 @router.get("", response_model=ModelOut, responses=problems.responses(401, 503))
 async def get_model(state: State, caller: StationCaller, model: CurrentModel) -> ModelOut:
     """The model being served: ids, threshold and how it was set, manifest, and what rollback would restore."""
-    return model_out(state, model)
+    return model_out(model, state.slot.previous, caller)
 
 
 @router.get("/events", response_model=ModelEventList, responses=problems.responses(401, 422))
@@ -60,16 +67,16 @@ def list_model_events(
                 model=ModelRef(id=e.model_id, sha256=e.model_sha256),
                 threshold=e.threshold,
                 previous_threshold=e.previous_threshold,
-                caller=e.caller,
+                caller=shown_to(caller, e.caller),
                 operator=e.operator,
-                reason=e.reason,
+                reason=shown_to(caller, e.reason),
             )
             for e in events
         ]
     )
 
 
-@router.put("", response_model=ModelOut, responses=problems.responses(401, 403, 413, 422))
+@router.put("", response_model=ModelOut, responses=problems.responses(400, 401, 403, 413, 422))
 def put_model(
     state: State,
     caller: AdminCaller,
@@ -80,17 +87,17 @@ def put_model(
     new = prepare(
         data, name=f"uploaded bundle {(bundle.filename or '')[:80]!r}", settings=state.settings, source="upload"
     )
-    state.files.put_bundle(new.detector.sha256, data)
+    state.files.put_bundle(new.detector.sha256, data)  # before the swap: a restart can serve it again
     # requests that already hold the old model finish on it
-    state.slot.install(new, record=_log(state, "swap", caller))
-    return model_out(state, new)
+    out = state.slot.install(new, record=_log(state, "swap", caller), respond=_respond(caller))
+    keep_bundles(state.files, state.slot, keep=state.settings.keep_bundles)
+    return out
 
 
 @router.post("/rollback", response_model=ModelOut, responses=problems.responses(401, 403, 409))
 def rollback_model(state: State, caller: AdminCaller) -> ModelOut:
     """Swap back to the previous model (a second rollback undoes the first)."""
-    new = state.slot.rollback(record=_log(state, "rollback", caller))
-    return model_out(state, new)
+    return state.slot.rollback(record=_log(state, "rollback", caller), respond=_respond(caller))
 
 
 @router.put("/threshold", response_model=ModelOut, responses=problems.responses(401, 403, 422, 503))
@@ -98,7 +105,7 @@ def put_threshold(state: State, caller: AdminCaller, change: ThresholdIn) -> Mod
     """Set the current model's threshold (flag when score > threshold), recorded with who, when and why."""
     set_by = f"{change.operator} ({caller.name})"
 
-    def record(old: LoadedModel, new: LoadedModel) -> None:
+    def record(old: LoadedModel, new: LoadedModel, serving) -> None:
         event = model_event(
             "threshold",
             new,
@@ -107,9 +114,10 @@ def put_threshold(state: State, caller: AdminCaller, change: ThresholdIn) -> Mod
             operator=change.operator,
             reason=change.reason,
         )
-        state.store.add_model_event(event=event)
+        state.store.add_model_event(event=event, serving=serving)
 
-    new = state.slot.update(
-        lambda m: m.with_threshold(change.threshold, set_by=set_by, reason=change.reason), record=record
+    return state.slot.update(
+        lambda m: m.with_threshold(change.threshold, set_by=set_by, reason=change.reason),
+        record=record,
+        respond=_respond(caller),
     )
-    return model_out(state, new)

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import csv
-import datetime as dt
 import io
 from collections.abc import Iterator
 from dataclasses import fields
@@ -13,11 +12,11 @@ from fastapi import APIRouter
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, PlainTextResponse, StreamingResponse
 
 from service import problems
-from service.deps import CurrentModel, ServiceState, State, StationCaller
+from service.deps import CurrentModel, ServiceState, State, StationCaller, Window
 from service.metrics import CONTENT_TYPE
-from service.problems import Problem
 from service.schemas import DriftOut, HealthOut, ReadyOut
-from service.store import InspectionRecord, to_iso
+from service.settings import Caller, shown_to
+from service.store import InspectionRecord
 
 router = APIRouter(tags=["operations"])
 STATIC = Path(__file__).resolve().parent.parent / "static"
@@ -92,12 +91,12 @@ def _cell(value):
     return value
 
 
-def _csv_lines(state: ServiceState, since: str | None, until: str | None) -> Iterator[str]:
+def _csv_lines(state: ServiceState, viewer: Caller, since: str | None, until: str | None) -> Iterator[str]:
     buf = io.StringIO()
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     for record in state.store.iter_inspections(since=since, until=until):
-        writer.writerow([_cell(getattr(record, c)) for c in CSV_COLUMNS])
+        writer.writerow([_cell(shown_to(viewer, getattr(record, c))) for c in CSV_COLUMNS])
         if buf.tell() > 64 * 1024:
             yield buf.getvalue()
             buf.seek(0)
@@ -114,13 +113,9 @@ def _csv_lines(state: ServiceState, since: str | None, until: str | None) -> Ite
         **problems.responses(401, 422),
     },
 )
-def export_csv(
-    state: State, caller: StationCaller, since: dt.datetime | None = None, until: dt.datetime | None = None
-) -> StreamingResponse:
+def export_csv(state: State, caller: StationCaller, window: Window) -> StreamingResponse:
     """The audit rows of a time range as CSV: since <= time < until, both optional (UTC if no offset is given)."""
-    if since and until and to_iso(until) <= to_iso(since):
-        raise Problem(422, f"until ({until.isoformat()}) must be after since ({since.isoformat()})")
-    lines = _csv_lines(state, to_iso(since) if since else None, to_iso(until) if until else None)
+    lines = _csv_lines(state, caller, window.since, window.until)
     return StreamingResponse(
         lines,
         media_type="text/csv; charset=utf-8",

@@ -1,7 +1,10 @@
 """`python -m tests.bench --out bench_out/bench.json [--quick] [--only NAME ...] [--minutes M]`
 
-Sections of the JSON: quality (per dataset, per method), best_peers, speed, memory, service, machine, settings.
-The JSON is rewritten after every dataset, so a long run that is stopped still leaves what it measured.
+Sections of the JSON: datasets, quality (per dataset: knowngood and the peers), ablation (per dataset: the same
+trained nets with other terms, and on the tiled dataset knowngood at 128 px), best_peers, speed (a trained
+bundle; 128 and 256 px, batch 1 and 32, eager and ONNX Runtime; tiled inspection in s per megapixel), memory,
+service, machine, settings. Training time per dataset: `train_seconds` in each knowngood row. The JSON is
+rewritten after every dataset, so a long run that is stopped still leaves what it measured.
 """
 
 from __future__ import annotations
@@ -99,14 +102,18 @@ def log(msg: str) -> None:
 
 
 def run_quality(args, result: dict) -> dict[str, Path]:
+    """{dataset: its knowngood bundle} for the whole-image models (the later sections' reference candidates)."""
     bundles, fitted = {}, {}
     for name in args.names:
         ds = datasets.load(name, args.cache)
         result["datasets"][name] = ds.summary()
-        rows, bundles[name] = quality.evaluate(
+        rows, ablated, bundle_path = quality.evaluate(
             ds, minutes=args.minutes, bundle_dir=args.out.parent / "bundles", fitted=fitted, log=log
         )
+        if not ds.tile:
+            bundles[name] = bundle_path
         result["quality"][name] = rows
+        result["ablation"][name] = ablated
         result["best_peers"] = quality.best_peers(result["quality"])
         write(result, args.out)
     return bundles
@@ -127,20 +134,27 @@ def main(argv: list[str] | None = None) -> int:
         "machine": machine(),
         "datasets": {},
         "quality": {},
+        "ablation": {},
         "best_peers": {},
     }
     bundles = run_quality(args, result)
-    # the speed, memory and service sections use one trained bundle, elpv-pooled where it was run
-    ref = "elpv-pooled" if "elpv-pooled" in bundles else args.names[0]
-    det, _ = bundle.load(bundles[ref])
+    # the speed, memory and service sections use one trained whole-image bundle, elpv-pooled where it was run
+    ref = "elpv-pooled" if "elpv-pooled" in bundles else next(iter(bundles), None)
     if "speed" not in args.skip:
-        log(f"speed: bundle of {ref}")
+        log("speed: 128 and 256 px, tiled 2048 px" + (f", bundle of {ref}" if ref else ""))
         result["speed"] = {
-            "bundle_of": ref,
-            **speed.measure(det, datasets.native_images(ref, args.cache, "test", 32), repeats=args.speed_repeats),
+            "by_size": speed.by_size(repeats=args.speed_repeats),
+            "tiled": speed.tiled(repeats=args.speed_repeats),
         }
+        if ref:
+            det, _ = bundle.load(bundles[ref])
+            native = datasets.native_images(ref, args.cache, "test", 32)
+            result["speed"] |= {"bundle_of": ref, **speed.measure(det, native, repeats=args.speed_repeats)}
         write(result, args.out)
     result["memory"] = {}
+    if ref is None:
+        args.skip += ["memory", "service"]  # they need a whole-image bundle
+        result["memory"]["skipped"] = "no whole-image dataset was run"
     if "memory" not in args.skip:
         log(f"memory: one `knowngood train` of {args.memory_steps} steps on the {ref} training images")
         result["memory"]["training"] = memory.training_peak_rss(
@@ -170,9 +184,29 @@ def print_summary(result: dict) -> None:
             f"- {name}: best peer {b['best_peer']} {b['best_peer_auroc']:.3f}; knowngood {b['knowngood_auroc']:.3f} "
             f"(margin {b['margin']:+.3f})"
         )
-    if "speed" in result:
-        print("\n## Inspection speed (128 px, heatmap and score included)\n")
-        print(speed.markdown(result["speed"]))
+    print("\n## Per-term ablation, image AUROC\n")
+    print(
+        "The same trained nets with other terms, each standardised on the same held-out images; "
+        f"{quality.TILING_ROW}: the tiled dataset's recipe trained anew on the whole image at 128 px.\n"
+    )
+    print(quality.ablation_table(result["quality"], result["ablation"]))
+    print("\n## Training time (knowngood, `train_bundle` wall time)\n")
+    for name, rows in result["quality"].items():
+        kg = rows["knowngood"]
+        tiles = f", {kg['tile']} px tiles" if kg.get("tile") else ""
+        print(f"- {name}: {kg['train_seconds']:.0f} s ({kg['steps']} steps in {kg['fit_seconds']:.0f} s{tiles})")
+    sp = result.get("speed", {})
+    if "by_size" in sp:
+        print("\n## Inspection speed by size (every term, heatmap and score included)\n")
+        print(speed.markdown_by_size(sp["by_size"]))
+        t = sp["tiled"]
+        print(
+            f"\nTiled inspection ({t['tile']} px tiles, ONNX Runtime): {t['seconds_per_megapixel']:.2f} s per "
+            f"megapixel ({t['image_side']} px image, {t['tiles']} tiles, {t['seconds_per_image']:.1f} s)"
+        )
+    if "batches" in sp:
+        print(f"\n## Inspection speed of the {sp['bundle_of']} bundle ({' x '.join(map(str, sp['image_size']))} px)\n")
+        print(speed.markdown(sp))
     mem = result.get("memory", {})
     if "training" in mem:
         print(f"\nTraining peak RSS: {mem['training']['peak_rss_mib']:.0f} MiB")

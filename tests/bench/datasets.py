@@ -18,11 +18,25 @@ Splits (fixed; every method sees exactly the same images):
   | elpv-pooled | mono + poly | = 1 | 1206 | 302 | 715 |
   | elpv-pooled-p67 | mono + poly | >= 2/3 | 1206 | 302 | 821 |
 
-- **demo-bracket**, **demo-weave**: the invented demo parts of `demo_parts.render_scenario(dir, seed=0)`, rendered
-  once into a cache folder. Train = `<kind>/train/good`; test = `<kind>/holdout/good` (label 0) and every image
-  under `<kind>/holdout/defective/<defect>/` (label 1); the mask of a defective image is the file with the same
-  defect folder and stem under `<kind>/holdout/masks/`; good images have all-False masks. Images keep the
-  resolution they were rendered at.
+- **demo-bracket**, **demo-weave**, **demo-casting**: the invented demo parts of
+  `demo_parts.render_scenario(dir, seed=0)` (128 px; 240 known-good training images, 60 good and 12 defective per
+  defect kind in the test set), rendered once into a cache folder. Train = `<kind>/train/good`; test =
+  `<kind>/holdout/good` (label 0) and every image under `<kind>/holdout/defective/<defect>/` (label 1); the mask
+  of a defective image is the file with the same defect folder and stem under `<kind>/holdout/masks/`; good
+  images have all-False masks. Images keep the resolution they were rendered at.
+
+- **demo-casting-large**: the casting at the camera's own scale, `demo_parts.render_large("casting", ...)` at
+  1024 x 1024 px (grains and defects keep their 128 px render's pixel sizes, so a defect is a few px in a
+  megapixel image): 60 known-good training images, 20 good and 20 defective (4 per defect kind) test images,
+  with masks, in the same folder layout, rendered once into the cache. Each image's rng is keyed by what it is
+  (`large_rng`, like `demo_parts.scenario.image_rng`), so a count change leaves the other images as they were.
+  knowngood trains a tiled model on it (`Dataset.tile` = 128: 128 px tiles, the camera's scale); the peers see
+  the whole image at 128 px, as they see every dataset.
+
+  | name | train good | test good | test defective | side | knowngood |
+  | --- | --- | --- | --- | --- | --- |
+  | demo-bracket, demo-weave, demo-casting | 240 | 60 | 60 (5 defect kinds x 12) | 128 | whole image |
+  | demo-casting-large | 60 | 20 | 20 (5 x 4) | 1024 | 128 px tiles |
 """
 
 from __future__ import annotations
@@ -31,6 +45,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from PIL import Image
 
 from training.data import list_images, load_folder, read_image, to_model_input
 
@@ -40,8 +55,13 @@ ELPV = {
     "elpv-pooled": (("mono", "poly"), 1.0),
     "elpv-pooled-p67": (("mono", "poly"), 2 / 3),
 }
-DEMO = {"demo-bracket": "bracket", "demo-weave": "weave"}
-NAMES = (*ELPV, *DEMO)
+DEMO = {"demo-bracket": "bracket", "demo-weave": "weave", "demo-casting": "casting"}
+LARGE = "demo-casting-large"
+NAMES = (*ELPV, *DEMO, LARGE)
+LARGE_SIZE = 1024
+LARGE_TILE = 128  # the 128 px render's pixel scale: a tile sees what a whole 128 px image shows
+LARGE_COUNTS = {"train": 60, "good": 20, "per_defect": 4}
+_LARGE_KEY = 1024  # keeps the large images' random streams apart from the 128 px scenario's
 ELPV_SIZE = 128
 TRAIN_SHARE = 0.8
 SPLIT_SEED = 0
@@ -59,6 +79,7 @@ class Dataset:
     labels: np.ndarray
     masks: list[np.ndarray] | None
     source: str
+    tile: int = 0  # knowngood's tile size on this dataset (0: the whole image at the working size)
 
     @property
     def channels(self) -> int:
@@ -70,6 +91,8 @@ class Dataset:
             "test_good": int((self.labels == 0).sum()),
             "test_defective": int((self.labels == 1).sum()),
             "masks": self.masks is not None,
+            "image_shape": list(self.test[0].shape),
+            "knowngood_tile": self.tile,
             "source": self.source,
         }
 
@@ -79,6 +102,8 @@ def load(name: str, cache: Path) -> Dataset:
         return load_elpv(name)
     if name in DEMO:
         return load_demo(name, cache)
+    if name == LARGE:
+        return load_large(cache)
     raise KeyError(f"unknown dataset {name!r}; expected one of {', '.join(NAMES)}")
 
 
@@ -144,10 +169,11 @@ def elpv_reduced(n_train: int, n_test: int, seed: int = 0, size: int = ELPV_SIZE
 
 
 def demo_root(cache: Path, seed: int = 0) -> Path:
-    """Renders the demo scenario into `cache/demo-seed<seed>` once; later calls reuse it."""
+    """Renders the demo scenario into `cache/demo-seed<seed>` once; later calls reuse it (rendered again when a
+    part kind the benchmark uses is missing, e.g. a cache from before the casting)."""
     root = Path(cache) / f"demo-seed{seed}"
     done = root / ".complete"
-    if not done.exists():
+    if not done.exists() or not all((root / kind).is_dir() for kind in DEMO.values()):
         from demo_parts import render_scenario
 
         root.mkdir(parents=True, exist_ok=True)
@@ -165,8 +191,8 @@ def _mask_for(path: Path, defective: Path, masks: Path) -> np.ndarray:
     raise FileNotFoundError(f"{path}: no mask with the same stem under {folder}")
 
 
-def load_demo(name: str, cache: Path) -> Dataset:
-    kind_dir = demo_root(cache) / DEMO[name]
+def _load_kind(kind_dir: Path) -> tuple[list, list, np.ndarray, list]:
+    """train, test images, labels and masks of one part kind's folders (the layout of `render_scenario`)."""
     train = load_folder(kind_dir / "train" / "good").images
     good = load_folder(kind_dir / "holdout" / "good").images
     defective_dir = kind_dir / "holdout" / "defective"
@@ -174,7 +200,58 @@ def load_demo(name: str, cache: Path) -> Dataset:
     masks = [np.zeros(im.shape[-2:], dtype=bool) for im in good]
     masks += [_mask_for(p, defective_dir, kind_dir / "holdout" / "masks") for p in bad.paths]
     labels = np.array([0] * len(good) + [1] * len(bad.images))
-    return Dataset(name, train, good + bad.images, labels, masks, f"demo_parts.render_scenario seed 0, {DEMO[name]}")
+    return train, good + bad.images, labels, masks
+
+
+def load_demo(name: str, cache: Path) -> Dataset:
+    train, test, labels, masks = _load_kind(demo_root(cache) / DEMO[name])
+    return Dataset(name, train, test, labels, masks, f"demo_parts.render_scenario seed 0, {DEMO[name]}")
+
+
+# ---------------------------------------------------------------------------------------------------- large
+
+
+def large_rng(seed: int, split: int, defect_index: int, index: int, size: int) -> np.random.Generator:
+    """The random stream of one large casting image, keyed by what it is (split 0 train, 1 good test, 2 defective
+    test; the defect's index in `DEFECT_KINDS`; its number) and the image size."""
+    from demo_parts import PART_KINDS
+
+    return np.random.default_rng([seed, _LARGE_KEY, PART_KINDS.index("casting"), split, defect_index, index, size])
+
+
+def _save_png(path: Path, array: np.ndarray) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    Image.fromarray(array).save(path, format="PNG")
+
+
+def large_root(cache: Path, *, seed: int = 0, size: int = LARGE_SIZE, counts: dict = LARGE_COUNTS) -> Path:
+    """Renders the large casting set into a cache folder named for its seed, size and counts, once (the layout of
+    `render_scenario`'s part-kind folders); later calls reuse it. About a second per 1024 px image."""
+    from demo_parts import DEFECT_KINDS, render_large
+
+    n_train, n_good, n_bad = counts["train"], counts["good"], counts["per_defect"]
+    root = Path(cache) / f"casting-large-{size}px-seed{seed}-{n_train}-{n_good}-{n_bad}"
+    done = root / ".complete"
+    if done.exists():
+        return root
+    jobs = [("train/good", None, 0, 0, i) for i in range(n_train)]
+    jobs += [("holdout/good", None, 1, 0, i) for i in range(n_good)]
+    jobs += [(defect, defect, 2, d, i) for d, defect in enumerate(DEFECT_KINDS["casting"]) for i in range(n_bad)]
+    for folder, defect, split, d, i in jobs:
+        out = render_large("casting", defect, large_rng(seed, split, d, i, size), size)
+        if defect is None:
+            _save_png(root / folder / f"{i:04d}.png", out.image)
+        else:
+            _save_png(root / "holdout/defective" / defect / f"{i:04d}.png", out.image)
+            _save_png(root / "holdout/masks" / defect / f"{i:04d}.png", np.where(out.mask, 255, 0).astype(np.uint8))
+    done.write_text("rendered by tests/bench/datasets.py\n")
+    return root
+
+
+def load_large(cache: Path, *, size: int = LARGE_SIZE, counts: dict = LARGE_COUNTS) -> Dataset:
+    train, test, labels, masks = _load_kind(large_root(cache, size=size, counts=counts))
+    source = f"demo_parts.render_large casting, {size} px, seed 0"
+    return Dataset(LARGE, train, test, labels, masks, source, tile=LARGE_TILE)
 
 
 def native_images(name: str, cache: Path, split: str, n: int | None = None) -> list[np.ndarray]:
@@ -184,5 +261,5 @@ def native_images(name: str, cache: Path, split: str, n: int | None = None) -> l
         train, good, bad = elpv_split(name, probs, types)
         idx = train if split == "train" else np.concatenate([good, bad])
         return _cells(images, idx[:n], None)
-    ds = load_demo(name, cache)
+    ds = load(name, cache)
     return (ds.train if split == "train" else ds.test)[:n]

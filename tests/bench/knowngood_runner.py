@@ -3,7 +3,6 @@ then score a test set with the loaded `Detector`, exactly as `knowngood inspect`
 
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import time
 from dataclasses import dataclass
@@ -15,8 +14,6 @@ import torch
 from training.config import ModelConfig, TrainConfig
 from training.data import ImageSet
 from training.detector import Detector
-from training.fit import split_indices
-from training.scoring import ScoringGraph
 from training.train import train_bundle
 
 SIZE = 128
@@ -49,9 +46,11 @@ def train(
     steps: int | None = None,
     channels: int = 1,
     seed: int = 0,
+    tile: int = 0,
 ) -> KnowngoodRun:
-    """Trains on known-good images (C, H, W) within `minutes` (or exactly `steps` steps when minutes is None)."""
-    model = ModelConfig(size=SIZE, channels=channels)
+    """Trains on known-good images (C, H, W) within `minutes` (or exactly `steps` steps when minutes is None);
+    `tile` > 0: a tiled model, tiles of that many native px at the working size `SIZE`."""
+    model = ModelConfig(size=SIZE, channels=channels, tile=tile)
     tcfg = TrainConfig(steps=steps or 10**9, minutes=minutes or 0.0, seed=seed)
     start = time.monotonic()
     det = train_bundle(
@@ -63,21 +62,18 @@ def train(
 
 
 def score(det: Detector, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray, float]:
-    """x (N, C, S, S) -> scores (N,) (higher = less like known-good), heatmaps (N, S, S), ms per image."""
+    """x (N, C, h, w) at the working shape -> scores (N,) (higher = less like known-good), heatmaps (N, h, w),
+    ms per image. Whole-image models only."""
     start = time.perf_counter()
     scores, heats = det.score_batch(x)
     ms = (time.perf_counter() - start) * 1000 / len(x)
     return scores, heats.numpy(), ms
 
 
-def without_perceptual(det: Detector, x: torch.Tensor) -> Detector:
-    """The same trained generator, encoder and critic scored with the GAN terms only (the ablation the benchmark
-    reports beside knowngood): standardised again on the very held-out images `train_bundle` used; x (N, C, S, S)
-    are the training images in the bundle's working size and colour mode, in the order `train_bundle` saw them."""
-    cfg = dataclasses.replace(det.cfg, perceptual=0.0)
-    g = det.graph
-    graph = ScoringGraph(cfg, g.encoder, g.generator, g.critic)
-    train_cfg = det.manifest["training"]["config"]
-    _, std_idx, _ = split_indices(len(x), train_cfg["holdout_share"], train_cfg["seed"])
-    graph.fit_standardisation(x[std_idx])
-    return Detector(cfg=cfg, graph=graph, threshold=det.threshold, manifest=det.manifest)
+def score_images(det: Detector, images: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray], float]:
+    """Native-resolution images (C, H, W) -> scores (N,) (higher = less like known-good), heatmaps (H, W) at each
+    image's own resolution, ms per image: `Detector.score_images`, tiling included."""
+    start = time.perf_counter()
+    scores, heats, _ = det.score_images(images)
+    ms = (time.perf_counter() - start) * 1000 / len(images)
+    return scores, heats, ms

@@ -6,7 +6,9 @@
                                maps (N, S, S) float32 (same direction) or None when the peer has no heatmap
 
 They are deliberately plain: a method that cannot beat them on a dataset has not learned anything the raw
-pixels did not already say. Only general-purpose libraries (scikit-learn, PyTorch, NumPy).
+pixels did not already say. General-purpose libraries (scikit-learn, PyTorch, NumPy), except the patch memory,
+which is the published PatchCore recipe on knowngood's own frozen backbone and memory code: the strongest peer,
+and the one that tells whether the GAN adds anything to pretrained features.
 """
 
 from __future__ import annotations
@@ -22,6 +24,8 @@ from torch import nn
 
 from training.augment import random_patches
 from training.config import ModelConfig
+from training.memory import as_patches, build_memory, local_average, nearest_distance
+from training.perceptual import load_pretrained
 from training.scoring import gaussian_kernel
 
 
@@ -90,6 +94,44 @@ class MeanGreyPeer:
     def score(self, x: torch.Tensor) -> tuple[np.ndarray, None]:
         means = x.double().mean(dim=(1, 2, 3)).numpy()
         return np.abs(means - self.mu) / self.sigma, None
+
+
+class PatchMemoryPeer:
+    """PatchCore (Roth et al., CVPR 2022) on knowngood's backbone, no GAN: the frozen ImageNet EfficientNet-Lite0
+    features of `training.perceptual.load_pretrained`, each position averaged over its 3 x 3 neighbourhood
+    (`training.memory.local_average`), the known-good patches subsampled by greedy coreset to a memory of
+    `ModelConfig.memory_size` entries (4096, knowngood's default; `training.memory.build_memory`). Map = each
+    patch's Euclidean distance to its nearest memory entry (`nearest_distance`), upsampled bilinearly to the
+    input size; score = the map's maximum (PatchCore's image score, without its re-weighting by the
+    neighbourhood's density or its Gaussian smoothing of the map)."""
+
+    name = "patch-memory"
+
+    def __init__(self, memory_size: int = ModelConfig.memory_size, *, seed: int = 0, batch: int = 8):
+        # batch 8 at 128 px: the distance matrix is 8 x 1024 positions x 4096 entries, 128 MB
+        self.memory_size, self.seed, self.batch = memory_size, seed, batch
+
+    @torch.inference_mode()
+    def fit(self, train: torch.Tensor) -> PatchMemoryPeer:
+        self.net = load_pretrained()
+        patches = torch.cat(
+            [as_patches(local_average(self.net(train[i : i + 32]))) for i in range(0, len(train), 32)]
+        )  # (N h w, F)
+        memory = build_memory(patches, self.memory_size, seed=self.seed)
+        self.centre = memory.mean(0)  # stored centred, as nearest_distance expects (smaller float32 cancellation)
+        self.memory = memory - self.centre
+        self.memory_sq = (self.memory * self.memory).sum(1)
+        return self
+
+    @torch.inference_mode()
+    def score(self, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray]:
+        maps = []
+        for i in range(0, len(x), self.batch):
+            phi = local_average(self.net(x[i : i + self.batch]))  # (B, F, S/4, S/4)
+            dist = nearest_distance(phi, self.memory, self.memory_sq, self.centre)  # (B, 1, S/4, S/4)
+            maps.append(F.interpolate(dist, size=x.shape[-2:], mode="bilinear", align_corners=False)[:, 0])
+        m = torch.cat(maps)
+        return m.flatten(1).amax(1).double().numpy(), m.numpy()
 
 
 def _down(c_in: int, c_out: int, norm: bool) -> nn.Sequential:
@@ -189,4 +231,4 @@ class AutoEncoderPeer:
 
 def simple_peers() -> list:
     """The peers that need no time budget, in table order."""
-    return [NearestNeighbourPeer(), PCAPeer(), MeanGreyPeer()]
+    return [PatchMemoryPeer(), NearestNeighbourPeer(), PCAPeer(), MeanGreyPeer()]

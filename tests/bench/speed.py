@@ -1,5 +1,12 @@
 """Speed section: inspection latency (heatmap and score included), FLOPs, the machine's matmul peak, and ONNX
-Runtime against eager PyTorch. Everything on `THREADS` CPU threads, medians of repeats, under inference mode."""
+Runtime against eager PyTorch. Everything on `THREADS` CPU threads, medians of repeats, under inference mode.
+
+Three parts: `measure`, a trained bundle on its dataset's images; `by_size`, ms per image at 128 and 256 px,
+batch 1 and 32, eager and ONNX Runtime (as the service runs it, `Detector.use_onnx`); `tiled`, seconds per
+megapixel of a tiled model (`Detector.score_images` on a 2048 x 2048 image, 128 px tiles, ONNX Runtime). The
+last two use untrained graphs with every term (`synthetic_detector`): the time does not depend on the weights'
+values, and every term is the most work a model can be chosen to do.
+"""
 
 from __future__ import annotations
 
@@ -10,11 +17,17 @@ import numpy as np
 import torch
 from torch.utils.flop_counter import FlopCounterMode
 
-from training.detector import Detector
+from training.bundle import new_graph
+from training.config import ModelConfig
+from training.detector import Detector, tile_boxes
 from training.runtime import OnnxRunner
+from training.scoring import term_weights
 
 THREADS = 2
 BATCHES = (1, 32)
+SIZES = (128, 256)
+TILED_SIDE = 2048
+TILE = 128
 
 
 def median_ms(fn, repeats: int, warmup: int = 5) -> float:
@@ -44,7 +57,7 @@ def matmul_peak_gflops(n: int = 1024, repeats: int = 10) -> float:
 def flops_per_image(det: Detector) -> int:
     """Floating-point operations of one forward of the scoring graph on one image (a multiply-add counts 2, as
     `torch.utils.flop_counter` counts); covers convolutions and the other ops it knows (not element-wise ops)."""
-    x = torch.rand(1, det.cfg.channels, det.cfg.size, det.cfg.size)
+    x = torch.rand(1, det.cfg.channels, *det.cfg.shape)
     counter = FlopCounterMode(display=False)
     with torch.inference_mode(), counter:
         det.graph(x)
@@ -63,7 +76,8 @@ def measure(det: Detector, native: list[np.ndarray], *, repeats: int = 20) -> di
     flops = flops_per_image(det)
     out = {
         "threads": THREADS,
-        "image_size": det.cfg.size,
+        "image_size": list(det.cfg.shape),
+        "terms": term_weights(det.cfg),
         "native_size": list(native[0].shape[-2:]),
         "flops_per_image": flops,
         "matmul_peak_gflops": round(peak, 2),
@@ -100,6 +114,55 @@ def measure(det: Detector, native: list[np.ndarray], *, repeats: int = 20) -> di
     return out
 
 
+def synthetic_detector(size: int, *, tile: int = 0) -> Detector:
+    """An untrained model with every term at `size` px (tiles of `tile` px when > 0), its memory filled with random
+    entries (a zero memory would be a degenerate matrix product); for timing only."""
+    torch.manual_seed(0)
+    cfg = ModelConfig(size=size, tile=tile)
+    graph = new_graph(cfg)
+    graph.memory.normal_()
+    graph.memory_sq.copy_((graph.memory * graph.memory).sum(1))
+    return Detector(cfg=cfg, graph=graph.eval(), threshold=float("inf"))
+
+
+def by_size(repeats: int = 20) -> dict:
+    """{size: ms per image of `Detector.score_batch` (score and heatmap at the working size), eager and ONNX,
+    at each batch of `BATCHES`}; a batch is scored in forward passes of `Detector.batch_size` images."""
+    torch.set_num_threads(THREADS)
+    out = {}
+    for size in SIZES:
+        det = synthetic_detector(size)
+        xs = {b: torch.rand(b, 1, size, size) for b in BATCHES}
+        row = {"flops_per_image": flops_per_image(det), "forward_batch": det.batch_size(), "batches": {}}
+        for engine in ("eager", "onnxruntime"):
+            if engine == "onnxruntime":
+                det.use_onnx(threads=THREADS)
+            for b, x in xs.items():
+                reps, warmup = (repeats, 5) if b == 1 else (max(2, repeats // 10), 1)
+                ms = median_ms(lambda x=x, det=det: det.score_batch(x), reps, warmup=warmup)
+                row["batches"].setdefault(str(b), {})[f"{engine}_ms_per_image"] = round(ms / b, 2)
+        out[str(size)] = row
+    return out
+
+
+def tiled(repeats: int = 20) -> dict:
+    """Seconds per megapixel of `Detector.score_images` (tiles, stitched heatmap at native resolution and worst
+    tile's score) on one `TILED_SIDE` px image, `TILE` px tiles at 128 px working size, ONNX Runtime."""
+    torch.set_num_threads(THREADS)
+    det = synthetic_detector(128, tile=TILE).use_onnx(threads=THREADS)
+    image = np.random.default_rng(0).random((1, TILED_SIDE, TILED_SIDE), dtype=np.float32)
+    ms = median_ms(lambda: det.score_images([image]), max(2, repeats // 10), warmup=1)
+    megapixels = TILED_SIDE * TILED_SIDE / 1e6
+    return {
+        "image_side": TILED_SIDE,
+        "tile": TILE,
+        "tiles": len(tile_boxes((TILED_SIDE, TILED_SIDE), TILE)),
+        "seconds_per_image": round(ms / 1000, 2),
+        "seconds_per_megapixel": round(ms / 1000 / megapixels, 3),
+        "engine": "onnxruntime",
+    }
+
+
 def markdown(speed: dict) -> str:
     lines = [
         "| batch | score_batch ms/image | inspect (native) ms/image | ONNX Runtime ms/image | ONNX speed-up | "
@@ -118,4 +181,18 @@ def markdown(speed: dict) -> str:
         f"{speed['matmul_peak_gflops']:.1f} GFLOP/s on {speed['threads']} threads; ONNX max |score diff| "
         f"{speed['onnx_max_abs_score_diff']:.2e}"
     )
+    return "\n".join(lines)
+
+
+def markdown_by_size(sizes: dict) -> str:
+    lines = [
+        "| size | batch | eager ms/image | ONNX Runtime ms/image | GFLOP/image |",
+        "| ---: | ---: | ---: | ---: | ---: |",
+    ]
+    for size, row in sizes.items():
+        for b, r in row["batches"].items():
+            lines.append(
+                f"| {size} px | {b} | {r['eager_ms_per_image']:.1f} | {r['onnxruntime_ms_per_image']:.1f} | "
+                f"{row['flops_per_image'] / 1e9:.2f} |"
+            )
     return "\n".join(lines)

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import dataclasses
+import os
 import sqlite3
 
 import numpy as np
 import pytest
 from service_testkit import ADMIN_AUTH, STATION_AUTH, png_bytes, post_image, row_count
+
+from training import bundle
 
 
 def _model(client) -> dict:
@@ -78,7 +82,9 @@ def test_threshold_change_is_recorded_with_who_and_when(client, good_png):
     [latest, load] = client.get("/v1/model/events", headers=STATION_AUTH).json()["items"]
     assert (latest["kind"], latest["threshold"], latest["previous_threshold"]) == ("threshold", 0.25, 3.0)
     assert (latest["operator"], latest["reason"]) == ("Dana", "holdout retune")
-    assert latest["time"] and latest["caller"].startswith("admin:") and load["kind"] == "load"
+    assert latest["time"] and latest["caller"] == "admin" and load["kind"] == "load"  # station: no fingerprint
+    [latest, _] = client.get("/v1/model/events", headers=ADMIN_AUTH).json()["items"]
+    assert latest["caller"].startswith("admin:")
 
 
 @pytest.mark.parametrize(
@@ -152,3 +158,62 @@ def test_onnx_runtime_scores_like_pytorch(make_client, tiny_good_images, tmp_pat
     x = served.detector.prepare(tiny_good_images[:4])
     _, _, drift_features = served.detector.score_and_embed(x)  # what the drift window gets, from the scoring pass
     np.testing.assert_allclose(drift_features, served.detector.embed(x), rtol=1e-4, atol=1e-6)
+
+
+def test_a_swap_and_its_threshold_survive_a_restart(make_client, second_bundle, good_png, caplog):
+    client = make_client()
+    first = _model(client)
+    swapped = client.put("/v1/model", files={"bundle": ("s.kgm", second_bundle.read_bytes())}, headers=ADMIN_AUTH)
+    client.put("/v1/model/threshold", json={"threshold": 1.25, "operator": "Dana"}, headers=ADMIN_AUTH)
+    client.__exit__(None, None, None)
+    with caplog.at_level("INFO", logger="knowngood.service"):
+        restarted = make_client()  # the same command-line bundle as before
+    m = _model(restarted)
+    assert (m["sha256"], m["threshold"]["value"]) == (swapped.json()["sha256"], 1.25)
+    assert m["threshold"]["set_by"].startswith("Dana") and m["previous"]["sha256"] == first["sha256"]
+    [line] = [r.getMessage() for r in caplog.records if r.getMessage().startswith("serving model")]
+    assert m["id"] in line and "made current by threshold" in line and "unchanged" in line
+    assert post_image(restarted, good_png).json()["threshold"] == 1.25
+    back = restarted.post("/v1/model/rollback", headers=ADMIN_AUTH).json()  # the rollback history is kept
+    assert (back["sha256"], back["threshold"]["value"]) == (first["sha256"], 3.0)
+    restarted.__exit__(None, None, None)
+    assert _model(make_client(model_path=None))["sha256"] == first["sha256"]  # no flag: what was served
+
+
+def test_a_new_command_line_bundle_replaces_the_swapped_model(
+    make_client, tiny_bundle, second_bundle, tmp_path, caplog
+):
+    client = make_client(model_path=second_bundle)
+    tiny = client.put("/v1/model", files={"bundle": ("t.kgm", tiny_bundle.read_bytes())}, headers=ADMIN_AUTH).json()
+    client.__exit__(None, None, None)
+    restarted = make_client(model_path=second_bundle)
+    assert _model(restarted)["sha256"] == tiny["sha256"]  # the same flag: the swap stands
+    restarted.__exit__(None, None, None)
+    det, frechet = bundle.load(second_bundle)
+    third = tmp_path / "third.kgm"
+    bundle.save(dataclasses.replace(det, threshold=2.75), frechet, third)
+    with caplog.at_level("INFO", logger="knowngood.service"):
+        changed = make_client(model_path=third)  # an engineer gives another bundle: it wins, and says so
+    m = _model(changed)
+    assert m["threshold"]["value"] == 2.75 and m["source"] == f"startup: {third}"
+    assert m["previous"]["sha256"] == tiny["sha256"]  # the swapped model is the rollback target
+    [line] = [r.getMessage() for r in caplog.records if r.getMessage().startswith("serving model")]
+    assert "another bundle than at the last start" in line and m["id"] in line
+
+
+def test_uploaded_bundles_are_retained_with_a_limit(make_client, second_bundle):
+    client = make_client(keep_bundles=2)
+    det, frechet = bundle.load(second_bundle)
+    folder = client.app.state.service.settings.data_dir / "models"
+    uploads = []
+    for i in range(5):
+        path = folder.parent / f"b{i}.kgm"
+        bundle.save(dataclasses.replace(det, threshold=2.0 + i / 10), frechet, path)
+        r = client.put("/v1/model", files={"bundle": ("b.kgm", path.read_bytes())}, headers=ADMIN_AUTH)
+        uploads.append(r.json()["sha256"])
+        for p in folder.glob("*.kgm"):  # distinct times on any file system
+            os.utime(p, ns=(p.stat().st_mtime_ns - 10**9, p.stat().st_mtime_ns - 10**9))
+    kept = {p.stem for p in folder.glob("*.kgm")}
+    startup = client.app.state.service.slot.startup_sha256
+    # the command-line bundle, current and previous, plus the newest two others (KNOWNGOOD_KEEP_BUNDLES=2)
+    assert kept == {startup, *uploads[1:]} and uploads[0] not in kept

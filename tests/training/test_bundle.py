@@ -76,9 +76,12 @@ def test_frechet_arrays_survive(tiny_bundle):
 
 
 # what each older format lacked, and the settings that reproduce its scores
+_NEW_IN_4 = ("pixel", "memory", "adversarial", "memory_size", "height", "tile")
+_NO_POSITION_FREE = {"memory": 0.0, "adversarial": 0.0}
 OLDER_FORMATS = {
-    1: ({"perceptual": 0.0, "residual_shift": 0}, ("perceptual", "residual_shift")),
-    2: ({"residual_shift": 0}, ("residual_shift",)),
+    1: ({"perceptual": 0.0, "residual_shift": 0, **_NO_POSITION_FREE}, ("perceptual", "residual_shift", *_NEW_IN_4)),
+    2: ({"residual_shift": 0, **_NO_POSITION_FREE}, ("residual_shift", *_NEW_IN_4)),
+    3: (_NO_POSITION_FREE, _NEW_IN_4),
 }
 
 
@@ -102,7 +105,7 @@ def test_older_format_bundle_loads_and_scores_as_it_was_fitted(tiny_bundle, tiny
 
     loaded, _ = bundle.from_bytes(_rezip(bundle.to_bytes(old, frechet), as_older))
     assert all(getattr(loaded.cfg, k) == v for k, v in settings.items())
-    assert (loaded.graph.perceptual is None) == (cfg.perceptual == 0)
+    assert (loaded.graph.perceptual is None) == (not cfg.pretrained)
     assert [r.score for r in loaded.inspect(tiny_good_images[:3])] == [
         r.score for r in old.inspect(tiny_good_images[:3])
     ]

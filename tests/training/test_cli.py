@@ -58,7 +58,13 @@ def test_residual_shift_is_a_train_option_stored_in_the_bundle(scenario, tmp_pat
     good, out = str(scenario / "train" / "good"), tmp_path / "plain.kgm"
     args = ["train", good, "-o", str(out), "--steps", "2", "--size", "64", "--quiet"]
     assert main([*args, "--residual-shift", "0"]) == 0
-    assert bundle.load(out)[0].cfg.residual_shift == 0
+    det = bundle.load(out)[0]
+    assert det.cfg.residual_shift == 0
+    # the terms were chosen on synthetic defects, and train's last line says which and why
+    choice = det.manifest["score"]["choice"]
+    assert set(choice["alone"]) >= {"pixel@0", "memory"} and "pixel@1" not in choice["alone"]
+    last = capsys.readouterr().out.strip().splitlines()[-1]
+    assert last.startswith("chose terms ") and "synthetic-defect image AUROC" in last
     with pytest.raises(SystemExit) as bad:
         main([*args, "--residual-shift", "5"])
     assert bad.value.code == 2 and "--residual-shift" in capsys.readouterr().err

@@ -6,7 +6,8 @@ import zlib
 
 import numpy as np
 import pytest
-from PIL import Image
+import tifffile
+from PIL import Image, ImageOps
 
 from training.data import decode_image, load_folder, to_model_input
 from training.errors import BadDataset, BadImage, ImageTooLarge
@@ -90,3 +91,67 @@ def test_model_input_resizes_and_converts_colour():
     x = to_model_input(imgs, size=64, channels=1)
     assert x.shape == (2, 1, 64, 64) and 0 <= float(x.min()) and float(x.max()) <= 1
     assert to_model_input(imgs, size=32, channels=3).shape == (2, 3, 32, 32)
+
+
+def _tiff(arr: np.ndarray, pages: int = 1, **kw) -> bytes:
+    buf = io.BytesIO()
+    with tifffile.TiffWriter(buf) as tw:
+        for _ in range(pages):
+            tw.write(arr, **kw)
+    return buf.getvalue()
+
+
+FLOAT_RGB = dict(photometric="rgb")  # PIL cannot open float32 RGB: these take the tifffile path
+
+
+def test_every_decoder_enforces_the_same_limits():
+    """The tifffile fallback checks pixel count, minimum side, decoded bytes and frames from the header, like PIL."""
+    rgb = np.random.default_rng(0).random((60, 50, 3)).astype(np.float32)
+    assert decode_image(_tiff(rgb, **FLOAT_RGB), name="f.tif").shape == (3, 60, 50)
+    with pytest.raises(ImageTooLarge, match="f.tif: 50 x 60 pixels is over the limit of 2000 pixels"):
+        decode_image(_tiff(rgb, **FLOAT_RGB), name="f.tif", max_pixels=2000)
+    with pytest.raises(BadImage, match="too small"):
+        decode_image(_tiff(rgb[:8], **FLOAT_RGB), name="f.tif")
+    # under the pixel limit, but 3 float32 channels are 12 bytes a pixel: over BYTES_PER_PIXEL x the pixel limit
+    with pytest.raises(ImageTooLarge, match="bytes"):
+        decode_image(_tiff(rgb, **FLOAT_RGB), name="f.tif", max_pixels=3500)
+    rgba16 = np.zeros((60, 50, 4), np.uint16)
+    with pytest.raises(ImageTooLarge, match="bytes"):  # the same bound on the PIL path
+        decode_image(_tiff(rgba16, photometric="rgb", extrasamples=["unassalpha"]), name="a.tif", max_pixels=3500)
+    assert decode_image(_tiff(np.zeros((60, 50), np.uint8)), name="g.tif", max_pixels=3000).shape == (1, 60, 50)
+
+
+@pytest.mark.parametrize(
+    "data",
+    [_tiff(np.zeros((40, 40), np.uint8), pages=3), _tiff(np.zeros((40, 40, 3), np.float32), pages=3, **FLOAT_RGB)],
+    ids=["8-bit pages (PIL)", "float RGB pages (tifffile)"],
+)
+def test_multi_page_tiff_is_refused_on_every_path(data):
+    with pytest.raises(BadImage, match="p.tif: multi-frame .* 3 frames"):
+        decode_image(data, name="p.tif")
+
+
+def test_a_thousand_page_tiff_is_refused_quickly():
+    data = _tiff(np.zeros((16, 16), np.uint8), pages=1000)
+    with pytest.raises(BadImage, match="1000 frames"):
+        decode_image(data, name="p.tif")
+
+
+@pytest.mark.parametrize("orientation", range(1, 9))
+def test_exif_orientation_is_applied(orientation):
+    """Reference: Pillow's ImageOps.exif_transpose on the same file."""
+    arr = np.random.default_rng(orientation).integers(0, 256, (24, 40, 3), np.uint8)
+    img = Image.fromarray(arr)
+    exif = Image.Exif()
+    exif[0x0112] = orientation
+    data = _bytes(img, "PNG", exif=exif)
+    upright = np.asarray(ImageOps.exif_transpose(Image.open(io.BytesIO(data))).convert("RGB"))
+    out = decode_image(data, name="o.png")
+    np.testing.assert_array_equal(out, np.moveaxis(upright, -1, 0).astype(np.float32) / 255)
+    assert out.shape[1:] == ((40, 24) if orientation >= 5 else (24, 40))
+
+
+def test_tiff_orientation_on_the_tifffile_path():
+    arr = np.random.default_rng(3).random((20, 30, 3)).astype(np.float32)
+    out = decode_image(_tiff(arr, **FLOAT_RGB, extratags=[(0x0112, "H", 1, 6, True)]), name="o.tif")
+    np.testing.assert_array_equal(out, np.moveaxis(np.rot90(arr, -1), -1, 0))

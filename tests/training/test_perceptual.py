@@ -29,7 +29,7 @@ def test_output_shape_and_frozen():
 
 
 def test_perceptual_term_peaks_at_a_local_defect(tiny_good_images):
-    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, kappa=0.0, perceptual=1.0)
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, kappa=0.0, perceptual=1.0, memory=0, adversarial=0)
     graph = bundle.new_graph(cfg, load_pretrained()).eval()
     good = torch.from_numpy(np.stack(tiny_good_images))
     graph.fit_features(good[:16])
@@ -38,21 +38,25 @@ def test_perceptual_term_peaks_at_a_local_defect(tiny_good_images):
     defective[..., 20:25, 6:11] = 1.0  # a bright 5 x 5 spot on a dark area
     with torch.inference_mode():
         z = (graph.term_maps(defective) - graph.term_mean) / graph.term_std
-    term = z[0, 2]
+    term = z[0, list(graph.terms).index("perceptual")]
     y, x = divmod(int(term.argmax()), term.shape[-1])
     assert 17 <= y <= 27 and 3 <= x <= 13, (y, x)
     assert float(term.max()) > 3.0  # well outside the held-out known-good spread
 
 
-def test_without_the_term_the_graph_has_two_terms():
-    graph = bundle.new_graph(ModelConfig(size=32, width=8, z_channels=4, perceptual=0.0))
+def test_without_the_pretrained_terms_the_graph_has_two_terms():
+    cfg = ModelConfig(size=32, width=8, z_channels=4, perceptual=0.0, memory=0.0, adversarial=0.0)
+    graph = bundle.new_graph(cfg)
     assert graph.perceptual is None and graph.term_mean.shape[0] == 2
     assert not any(k.startswith("perceptual.") for k in graph.state_dict())
 
 
 def test_negative_weight_is_refused():
-    with pytest.raises(BadConfig, match="non-negative"):
-        ModelConfig(perceptual=-1.0)
+    for name in ("pixel", "kappa", "perceptual", "memory", "adversarial"):
+        with pytest.raises(BadConfig, match=f"{name} must be from 0 to 100"):
+            ModelConfig(**{name: -1.0})
+    with pytest.raises(BadConfig, match="at least one term"):
+        ModelConfig(pixel=0, kappa=0, perceptual=0, memory=0, adversarial=0)
 
 
 def test_a_feature_moved_by_one_cell_still_matches_with_shift_tolerance():

@@ -16,8 +16,9 @@ def test_score_is_top_fraction_mean_of_the_weighted_maximum_of_standardised_term
     with torch.inference_mode():
         score, heat, _ = det.graph(x)
         z = (det.graph.term_maps(x) - det.graph.term_mean) / det.graph.term_std
-    cfg = det.cfg
-    weighted = torch.stack([z[:, 0], cfg.kappa * z[:, 1], cfg.perceptual * z[:, 2]], 1)
+    weights = scoring.term_weights(det.cfg)  # {term: weight}, in the order of the maps
+    assert list(weights) == [t for t in scoring.TERMS if t in weights] and len(weights) == z.shape[1]
+    weighted = torch.stack([w * z[:, i] for i, w in enumerate(weights.values())], 1)
     expected_heat = weighted.max(1).values.clamp(min=0)
     assert torch.allclose(heat, expected_heat, atol=1e-6)
     k = det.graph.top_k
@@ -69,7 +70,9 @@ def test_onnx_runtime_gives_the_same_scores(tiny_bundle, tiny_good_images):
     fast = dataclasses.replace(det).use_onnx(threads=1).inspect(images)
     for a, b in zip(eager, fast):
         assert b.score == pytest.approx(a.score, rel=1e-4, abs=1e-5)  # float32 rounding between kernels
-        assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=1e-4)
+        # the memory term's distance, |q|² - 2 q·m + |m|² under a square root, turns float32 rounding of ~1e-6
+        # near distance 0 into ~1e-3 there; in held-out standard deviations that is nothing a verdict could see
+        assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=2e-3)
 
 
 def test_scoring_pass_embedding_equals_the_critic_pooled_features(tiny_bundle, tiny_good_images):

@@ -1,0 +1,76 @@
+"""Synthetic defects and the choice of terms made on them.
+
+Reference facts: Perlin gradient noise is zero at every lattice point (Perlin 2002, "Improving noise": each corner's
+contribution is its gradient dotted with the offset, which is zero at the corner itself); an AUROC is the
+Mann-Whitney probability that a defective copy outranks a good image (scikit-learn `roc_auc_score`).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+
+from training.config import ModelConfig
+from training.nets import build
+from training.perceptual import load_pretrained
+from training.selection import TOLERANCE, _ranked, choose_terms
+from training.synthetic import paste_defects, perlin
+
+
+def _images(n: int = 12, size: int = 32) -> torch.Tensor:
+    rng = np.random.default_rng(0)
+    yy, xx = np.mgrid[0:size, 0:size] / size
+    base = 0.4 + 0.2 * np.sin(6 * xx) * np.cos(4 * yy)
+    return torch.from_numpy(np.stack([base + rng.normal(0, 0.01, base.shape) for _ in range(n)])[:, None].astype("f4"))
+
+
+def test_perlin_noise_is_zero_on_the_lattice_and_bounded():
+    noise = perlin((64, 64), (4, 4), np.random.default_rng(0))  # lattice points every 16 px
+    assert np.abs(noise[::16, ::16]).max() < 1e-9
+    assert np.abs(noise).max() <= 1.5 and noise.std() > 0.1
+
+
+def test_pasted_defects_change_only_their_mask_and_are_reproducible():
+    x = _images()
+    bad, masks = paste_defects(x, copies=3, seed=1)
+    again, masks2 = paste_defects(x, copies=3, seed=1)
+    assert torch.equal(bad, again) and torch.equal(masks, masks2)
+    assert bad.shape == (36, 1, 32, 32) and masks.shape == (36, 32, 32)
+    for k in range(3):
+        for i in range(len(x)):
+            j = k * len(x) + i
+            m = masks[j]
+            assert 0 < m.sum() < 0.5 * m.numel()  # a local defect, never the whole image
+            assert torch.equal(bad[j][:, ~m], x[i][:, ~m])  # untouched outside the mask
+            assert (bad[j][:, m] - x[i][:, m]).abs().max() > 0
+    assert float(bad.min()) >= 0 and float(bad.max()) <= 1
+
+
+def test_ranking_prefers_fewer_terms_within_the_tolerance():
+    results = [
+        ({"memory": 1.0, "critic": 1.0}, {"criterion": 1.20}),
+        ({"memory": 1.0}, {"criterion": 1.20 - TOLERANCE / 2}),
+        ({"critic": 1.0}, {"criterion": 1.10}),
+    ]
+    assert _ranked(results)[0][0] == {"memory": 1.0}
+    clear = [({"memory": 1.0, "critic": 1.0}, {"criterion": 1.25}), ({"memory": 1.0}, {"criterion": 1.20})]
+    assert _ranked(clear)[0][0] == {"memory": 1.0, "critic": 1.0}  # a clear gain earns the second term
+
+
+def test_choice_is_recorded_and_no_single_term_beats_it():
+    torch.manual_seed(0)
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, memory_size=256)
+    x = _images(24)
+    choice = choose_terms(
+        cfg, build(cfg), load_pretrained(), fit_x=x[:12], std_x=x[12:18], good_x=x[18:], shifts=(0, 1), seed=0
+    )
+    ev = choice.evidence
+    assert set(ev["alone"]) == {"pixel@0", "pixel@1", "critic", "perceptual", "memory"}  # no feature critic given
+    assert ev["images"] == {"good": 6, "synthetic": 18}
+    chosen = {k for k, w in ev["chosen"].items() if w > 0}
+    assert chosen and not {"pixel@0", "pixel@1"} <= chosen  # one residual shift at most
+    best_alone = max(a["image_auroc"] + 0.25 * a["pixel_auroc"] for a in ev["alone"].values())
+    assert ev["image_auroc"] + 0.25 * ev["pixel_auroc"] >= best_alone - TOLERANCE
+    weights = {"pixel": choice.cfg.pixel, "critic": choice.cfg.kappa, "memory": choice.cfg.memory}
+    assert (weights["memory"] > 0) == ("memory" in chosen) and choice.cfg.adversarial == 0
+    assert (weights["pixel"] > 0) == any(c.startswith("pixel@") for c in chosen)

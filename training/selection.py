@@ -1,0 +1,210 @@
+"""Which terms enter a model's heatmap, with which weights and which residual shift: chosen at train time from
+synthetic defects pasted into held-out known-good images (`synthetic.py`), never from a labelled holdout.
+
+Every candidate term is computed once on the held-out known-good images and on their defective copies, each
+standardised as the final model will standardise it; every combination of weights is then scored by how well it
+separates the two (image AUROC, scikit-learn) plus a quarter of how well its heatmap finds the pasted masks
+(pixel AUROC on a fixed sample of pixels), which keeps ordering combinations when several separate the images
+perfectly. The combinations: every set of terms at weight 1 (one residual shift at most), then the best set with
+each of its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into
+the bundle.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import itertools
+
+import numpy as np
+import torch
+from sklearn.metrics import roc_auc_score
+
+from training.config import TERM_FIELDS, ModelConfig
+from training.scoring import ScoringGraph
+from training.synthetic import paste_defects
+
+PIXEL_WEIGHT = 0.25  # share of the pixel AUROC in the criterion
+PIXEL_SAMPLE = 20000
+TOLERANCE = 0.005  # criterion differences below this count as ties (see _ranked)
+SYNTHETIC_COPIES = 3  # defective copies of each held-out image, one of each kind
+# candidate name -> the settings it stands for; the two residual shifts are alternatives of one term
+OTHERS = {
+    "critic": "kappa",
+    "perceptual": "perceptual",
+    "memory": "memory",
+    "adversarial": "adversarial",
+}  # candidate name -> weight field
+
+
+def candidates(shifts: tuple[int, ...]) -> dict[str, dict]:
+    """Candidate name -> the settings it stands for; the image residual at each shift is an alternative."""
+    out = {f"pixel@{s}": {"pixel": 1.0, "residual_shift": s} for s in shifts}
+    return out | {name: {field: 1.0} for name, field in OTHERS.items()}
+
+
+def _field(name: str) -> str:
+    return "pixel" if name.startswith("pixel@") else OTHERS[name]
+
+
+REFERENCE = ("feature_mean", "feature_std", "memory", "memory_sq", "memory_centre")  # buffers fitted by `fit_features`
+
+
+@dataclasses.dataclass
+class Choice:
+    cfg: ModelConfig
+    evidence: dict
+    graphs: dict[str, ScoringGraph] = dataclasses.field(default_factory=dict, repr=False)
+
+    def adopt_reference(self, graph: ScoringGraph) -> None:
+        """Copies the pretrained terms' fitted reference (statistics, memory) from the candidates into `graph`."""
+        own = dict(graph.named_buffers())
+        for candidate in self.graphs.values():
+            for name, buf in candidate.named_buffers():
+                if name in REFERENCE and name in own:
+                    own[name].copy_(buf)
+
+
+def term_summary(evidence: dict) -> str:
+    """One line for `train`'s output and the report: what was chosen and why (the bundle's score.choice)."""
+    terms = ", ".join(f"{name} {w:g}" for name, w in evidence["chosen"].items() if w > 0)
+    alone = max(evidence["alone"], key=lambda k: evidence["alone"][k]["image_auroc"])
+    return (
+        f"terms {terms}: synthetic-defect image AUROC {evidence['image_auroc']:.3f}, pixel AUROC "
+        f"{evidence['pixel_auroc']:.3f} on {evidence['images']['synthetic']} pasted defects (best single term: "
+        f"{alone}, {evidence['alone'][alone]['image_auroc']:.3f})"
+    )
+
+
+def _with_weights(cfg: ModelConfig, **settings) -> ModelConfig:
+    """cfg with every term's weight 0 except those in `settings` (and the residual shift, when given)."""
+    return dataclasses.replace(cfg, **{**dict.fromkeys(TERM_FIELDS, 0.0), **settings})
+
+
+def candidate_graphs(
+    base: ModelConfig, nets, perceptual, shifts: tuple[int, ...], feature_critic=None
+) -> dict[str, ScoringGraph]:
+    """One scoring graph per candidate term (sharing the trained nets and the pretrained net); a term whose
+    weight is 0 in `base` is not a candidate, nor the adversarial term without a trained feature critic."""
+    out = {}
+    for name, settings in candidates(shifts).items():
+        if getattr(base, _field(name)) <= 0 or (name == "adversarial" and feature_critic is None):
+            continue  # left out by the caller, or not trained
+        cfg = _with_weights(base, **settings)
+        out[name] = ScoringGraph(
+            cfg, *nets, perceptual=perceptual if cfg.pretrained else None, feature_critic=feature_critic
+        )
+    return out
+
+
+@torch.no_grad()
+def _z_maps(graph: ScoringGraph, x: torch.Tensor, batch: int = 16) -> torch.Tensor:
+    """(N, H, W) standardised map of a one-term graph."""
+    graph.eval()
+    parts = []
+    for i in range(0, len(x), batch):
+        maps = graph.term_maps(x[i : i + batch])
+        parts.append(((maps - graph.term_mean) / graph.term_std)[:, 0])
+    return torch.cat(parts)
+
+
+def _image_scores(z: dict[str, torch.Tensor], weights: dict[str, float], top_k: int) -> torch.Tensor:
+    heat = torch.stack([z[n] * w for n, w in weights.items() if w > 0]).amax(0).clamp(min=0)  # (N, H, W)
+    return heat, heat.flatten(1).topk(top_k, dim=1).values.mean(1)
+
+
+def _subsets(names: list[str]):
+    """Every non-empty set of terms at weight 1, with at most one residual shift of the image residual."""
+    pixel = [n for n in names if n.startswith("pixel@")]
+    others = [n for n in names if not n.startswith("pixel@")]
+    for pix in [[]] + [[p] for p in pixel]:
+        for k in range(len(others) + 1):
+            for chosen in itertools.combinations(others, k):
+                if pix or chosen:
+                    yield dict.fromkeys([*pix, *chosen], 1.0)
+
+
+def _halved(best: dict[str, float]):
+    """The best set with one of its terms at half weight (when it has more than one)."""
+    if len(best) > 1:
+        for name in best:
+            yield {**best, name: 0.5}
+
+
+def _ranked(results: list[tuple[dict, dict]]) -> list[tuple[dict, dict]]:
+    """Best first: among the combinations within TOLERANCE of the best criterion, the one with the fewest terms
+    (then the higher criterion). A term enters only if it measurably helps on the pasted defects; more terms
+    for a difference inside the noise of a few dozen images would choose by chance."""
+    top = max(e["criterion"] for _, e in results)
+
+    def key(r):
+        near = r[1]["criterion"] >= top - TOLERANCE
+        return (not near, len(r[0]) if near else 0, -r[1]["criterion"])
+
+    return sorted(results, key=key)
+
+
+def choose_terms(
+    base: ModelConfig,
+    nets,
+    perceptual,
+    *,
+    fit_x: torch.Tensor,
+    std_x: torch.Tensor,
+    good_x: torch.Tensor,
+    shifts: tuple[int, ...] = (0, 1),
+    feature_critic=None,
+    seed: int = 0,
+) -> Choice:
+    """Fits every candidate term (pretrained reference on `fit_x`, standardisation on `std_x`), pastes synthetic
+    defects into `good_x` (held-out known-good images the nets and the standardisation never saw) and returns the
+    configuration whose heatmap separates them best, with the evidence."""
+    graphs = candidate_graphs(base, nets, perceptual, shifts, feature_critic)
+    bad_x, masks = paste_defects(good_x, copies=SYNTHETIC_COPIES, seed=seed)
+    z_good, z_bad = {}, {}
+    fit_phi = next((g.pretrained_features(fit_x) for g in graphs.values() if g.perceptual is not None), None)
+    for name, graph in graphs.items():
+        graph.fit_features(fit_x, seed=seed, feats=fit_phi)
+        graph.fit_standardisation(std_x)
+        z_good[name], z_bad[name] = _z_maps(graph, good_x), _z_maps(graph, bad_x)
+    z = {n: torch.cat([z_good[n], z_bad[n]]) for n in graphs}
+    labels = np.r_[np.zeros(len(good_x)), np.ones(len(bad_x))]
+    pix_labels = torch.cat([torch.zeros(len(good_x), *masks.shape[1:], dtype=torch.bool), masks]).flatten()
+    sample = torch.from_numpy(
+        np.random.default_rng(seed).choice(len(pix_labels), min(PIXEL_SAMPLE, len(pix_labels)), replace=False)
+    )
+    top_k = graphs[next(iter(graphs))].top_k
+
+    def evaluate(weights: dict[str, float]) -> dict:
+        heat, scores = _image_scores(z, weights, top_k)
+        img = float(roc_auc_score(labels, scores.numpy()))
+        pix = float(roc_auc_score(pix_labels[sample].numpy(), heat.flatten()[sample].numpy()))
+        return {"image_auroc": round(img, 4), "pixel_auroc": round(pix, 4), "criterion": img + PIXEL_WEIGHT * pix}
+
+    alone = {n: evaluate({n: 1.0}) for n in graphs}
+
+    results = _ranked([(combo, evaluate(combo)) for combo in _subsets(list(graphs))])
+    results = _ranked(results + [(combo, evaluate(combo)) for combo in _halved(results[0][0])])
+    best, best_eval = results[0]
+    settings = {}
+    for name, w in best.items():
+        if w > 0:
+            settings.update(candidates(shifts)[name], **{_field(name): w})
+    cfg = _with_weights(base, **settings)
+    evidence = {
+        "method": "synthetic defects (CutPaste rectangles and scars, Perlin-noise blobs) in held-out known-good images",
+        "criterion": f"image AUROC + {PIXEL_WEIGHT} x pixel AUROC",
+        "images": {"good": len(good_x), "synthetic": len(bad_x)},
+        "chosen": {n: float(best.get(n, 0.0)) for n in graphs},
+        "image_auroc": best_eval["image_auroc"],
+        "pixel_auroc": best_eval["pixel_auroc"],
+        "alone": {n: {k: v for k, v in e.items() if k != "criterion"} for n, e in alone.items()},
+        "runners_up": [
+            {
+                "weights": {n: w for n, w in combo.items() if w > 0},
+                "image_auroc": e["image_auroc"],
+                "pixel_auroc": e["pixel_auroc"],
+            }
+            for combo, e in results[1:6]
+        ],
+    }
+    return Choice(cfg=cfg, evidence=evidence, graphs=graphs)
