@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import sys
 from importlib.metadata import entry_points
 from pathlib import Path
@@ -148,6 +149,10 @@ def main(argv: list[str] | None = None) -> int:
     except (FileNotFoundError, IsADirectoryError, PermissionError) as exc:
         print(f"knowngood: error: {exc.filename}: {exc.strerror}", file=sys.stderr)
         return 2
+    except BrokenPipeError:  # `inspect --json | head`: the reader left; nothing more to say (Python docs, signal)
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return 0
     except KeyboardInterrupt:
         print("knowngood: interrupted (a training checkpoint, if any, lets the run resume)", file=sys.stderr)
         return 130

@@ -27,8 +27,27 @@ def _rate(name: str, value: float | None) -> None:
         raise BadConfig(f"{name} must be between 0 and 1 (exclusive), got {value}")
 
 
+def _positive(name: str, value: float | None) -> None:
+    if value is not None and not value > 0:
+        raise BadConfig(f"{name} must be positive, got {value:g}")
+
+
+def _writable_output(path: Path) -> None:
+    """Checked before minutes of work: the bundle's folder exists and takes files."""
+    folder = Path(path).parent
+    if not folder.is_dir():
+        raise BadConfig(f"-o {path}: folder {folder} does not exist")
+    if not os.access(folder, os.W_OK):
+        raise BadConfig(f"-o {path}: folder {folder} is not writable")
+    if Path(path).is_dir():
+        raise BadConfig(f"-o {path}: is a folder; give a file name such as part.kgm")
+
+
 def train(args) -> int:
     _rate("--target-false-reject", args.target_false_reject)
+    _positive("--minutes", args.minutes)
+    _positive("--steps", args.steps)
+    _writable_output(args.output)
     good = load_folder(args.good_dir, skip_bad=args.skip_bad)
     for path, why in good.skipped:
         print(f"knowngood: skipped {path}: {why}", file=sys.stderr)
@@ -53,6 +72,8 @@ def train(args) -> int:
         f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
         f"threshold {det.threshold:.3f} by {det.manifest['threshold']['method']})"
     )
+    if det.manifest["threshold"].get("method") == "conformal-max":
+        print(f"note: {det.manifest['threshold']['note'].split(';')[0]}")
     choice = det.manifest["score"].get("choice", {})
     if "chosen" in choice:
         print(f"chose {term_summary(choice)}")
@@ -159,6 +180,9 @@ def heatmap_names(files: list[Path]) -> dict[Path, str]:
 
 
 def inspect(args) -> int:
+    _positive("--batch", args.batch)
+    if args.heatmaps is not None and args.heatmaps.exists() and not args.heatmaps.is_dir():
+        raise BadConfig(f"--heatmaps {args.heatmaps}: is a file; give a folder")
     det, _ = bundle.load(args.model)
     files = _expand(args.paths)
     names = {}
@@ -176,18 +200,20 @@ def inspect(args) -> int:
                 if not args.skip_bad:
                     raise
                 print(f"knowngood: skipped {path}: {exc}", file=sys.stderr)
-        for path, img, res in zip(chunk, images, det.inspect(images, batch=args.batch)):
+        for path, img, res in zip(chunk, images, det.inspect(images)):
             flagged += res.verdict == "flag"
-            _emit(args, path, img, res, names.get(path))
+            _emit(args, path, img, res, names.get(path), det.model_id)
     return 1 if args.fail_on_flag and flagged else 0
 
 
-def _emit(args, path: Path, img: np.ndarray, res, name: str | None) -> None:
+def _emit(args, path: Path, img: np.ndarray, res, name: str | None, model_id: str) -> None:
     row = {
         "image": str(path),
         "score": round(res.score, 6),
         "threshold": round(res.threshold, 6),
         "verdict": res.verdict,
+        "model_id": model_id,
+        "time": dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds"),
     }
     if name is not None:
         overlay = args.heatmaps / f"{name}.png"

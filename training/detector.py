@@ -135,7 +135,7 @@ class Detector:
             [img[:, y : y + t, x : x + t] for y, x in boxes], size=self.cfg.shape, channels=self.cfg.channels
         )
 
-    def inspect(self, images: list[np.ndarray], batch: int | None = None) -> list[Inspection]:
+    def inspect(self, images: list[np.ndarray]) -> list[Inspection]:
         """Scores native-resolution images; heatmaps come back at each image's own size."""
         if not images:
             return []

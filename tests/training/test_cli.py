@@ -108,7 +108,8 @@ def test_inspect_json_and_heatmaps(trained, scenario, tmp_path, capsys):
     images = list(folder.rglob("*.png"))
     assert code == 0 and len(lines) == len(images) and len({p.stem for p in images}) < len(images)
     for row in lines:
-        assert set(row) == {"image", "score", "threshold", "verdict", "heatmap"}
+        assert set(row) == {"image", "score", "threshold", "verdict", "heatmap", "model_id", "time"}
+        assert row["model_id"] == bundle.load(trained)[0].model_id  # a saved line traces to its model
         assert row["verdict"] == ("flag" if row["score"] > row["threshold"] else "pass")
     overlays = {Path(row["heatmap"]) for row in lines}
     assert len(overlays) == len(lines)  # shared stems do not overwrite each other
@@ -145,6 +146,14 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
         ["inspect", str(tmp_path / "missing.kgm"), str(broken)],
         ["train", str(tmp_path / "nowhere"), "-o", str(tmp_path / "m.kgm")],
         ["tune", str(broken), "--good", str(tmp_path), "--defective", str(tmp_path)],
+        # mistakes refused by name before any work: non-positive budgets, an output folder that is not there,
+        # --heatmaps pointing at a file
+        ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--minutes", "-1"],
+        ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--minutes", "0"],
+        ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--steps", "0"],
+        ["train", str(tmp_path), "-o", str(tmp_path / "missing_dir" / "m.kgm")],
+        ["inspect", str(trained), str(broken), "--batch", "0"],
+        ["inspect", str(trained), str(broken), "--heatmaps", str(broken)],
     ]
     for args in cases:
         proc = subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True)
@@ -155,3 +164,13 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
         "broken.png"
         in subprocess.run([sys.executable, "-m", "training.cli", *cases[0]], capture_output=True, text=True).stderr
     )
+    for args, name in zip(cases[4:], ("--minutes", "--minutes", "--steps", "missing_dir", "--batch", "--heatmaps")):
+        err = subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True).stderr
+        assert name in err, err
+
+
+def test_inspect_json_into_a_closed_pipe_ends_quietly(trained, scenario):
+    folder = scenario / "holdout" / "good"
+    cmd = f"{sys.executable} -m training.cli inspect {trained} {folder} --json --batch 1 | head -n 1"
+    proc = subprocess.run(["bash", "-o", "pipefail", "-c", cmd], capture_output=True, text=True)
+    assert len(proc.stdout.splitlines()) == 1 and "Traceback" not in proc.stderr and "BrokenPipe" not in proc.stderr
