@@ -137,11 +137,21 @@ def tune_model(
             holdout,
             choice,
             title=f"knowngood report: {Path(model).name}",
-            model_info={"model_id": tuned.model_id, "bundle": str(out)},
+            model_info=_model_info(tuned, out),
         )
         summary["report"] = str(page)
     summary["bundle"] = str(out)
     return summary
+
+
+def _model_info(det, out: Path) -> dict:
+    """The report's model table: identity, and which terms were chosen and why (from the bundle)."""
+    info = {"model_id": det.model_id, "bundle": str(out)}
+    choice = det.manifest.get("score", {}).get("choice", {})
+    info["terms"] = term_summary(choice) if "chosen" in choice else choice.get("method", "not recorded")
+    if det.cfg.tile:
+        info["tiles"] = f"{det.cfg.tile} px at the camera's scale, each at {det.cfg.size} px"
+    return info
 
 
 def _expand(paths: list[Path]) -> list[Path]:

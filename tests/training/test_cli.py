@@ -98,6 +98,7 @@ def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, caps
     assert det.threshold == pytest.approx(summary["threshold"]["value"])
     assert summary["catch"]["rate"] >= 0.5 and summary["pixel_auroc"] is not None
     assert (report / "index.html").exists() and (report / "roc.png").exists()
+    assert "synthetic-defect image AUROC" in (report / "index.html").read_text()  # the chosen terms and why
     assert det.manifest["fingerprints"]["holdout"]
 
 
