@@ -56,6 +56,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     args.speed_repeats = 5 if args.quick else 30
     args.memory_steps = 5 if args.quick else 50
     args.service_seconds = 5 if args.quick else 30
+    args.service_burst_seconds = 3 if args.quick else 10
     return args
 
 
@@ -163,9 +164,16 @@ def main(argv: list[str] | None = None) -> int:
         write(result, args.out)
     if "service" not in args.skip:
         side = int(datasets.native_images(ref, args.cache, "test", 1)[0].shape[-1])
-        log(f"service: {args.service_seconds} s, 8 clients, {side} px images")
+        log(
+            f"service: {args.service_seconds} s, 8 clients, {side} px images; {args.service_burst_seconds} s, "
+            "32 clients; 4 clients posting the heaviest image the limits allow"
+        )
         result["service"] = memory.service_section(
-            bundles[ref], seconds=args.service_seconds, clients=8, image_size=side
+            bundles[ref],
+            seconds=args.service_seconds,
+            clients=8,
+            image_size=side,
+            burst_seconds=args.service_burst_seconds,
         )
         result["memory"]["service"] = memory.service_memory(result["service"]) or result["service"].get("skipped")
     result["machine"]["load_average_at_end"] = [round(v, 2) for v in os.getloadavg()]
@@ -212,6 +220,15 @@ def print_summary(result: dict) -> None:
         print(f"\nTraining peak RSS: {mem['training']['peak_rss_mib']:.0f} MiB")
     if "service" in mem:
         print(f"Service memory: {mem['service']}")
+    heavy = result.get("service", {}).get("heavy_image_rss", {})
+    if "peak_rss_mib" in heavy:
+        print(
+            f"Service peak RSS, 4 clients posting the heaviest image (MAX_PIXELS {heavy['limits']['max_pixels']}): "
+            f"{heavy['peak_rss_mib']:.0f} MiB against a bound of {heavy['bound_mib']:.0f} MiB"
+        )
+    crowd = result.get("service", {}).get("clients_32", {})
+    if "rate_503" in crowd:
+        print(f"Service at 32 clients: {crowd['requests']} requests, 503 share {crowd['rate_503']:.1%}")
     print(f"\n{result['seconds']:.0f} s in all")
 
 

@@ -3,7 +3,11 @@
 
 `run(bundle_path, seconds=30, clients=8, image_size=...)` returns throughput (req/s), p50/p99 latency (ms), errors,
 the swap's duration and status, and the server's RSS at rest (after start and warm-up, before load) and its peak
-(VmHWM from /proc/<pid>/status). `python -m tests.bench.bench_service MODEL [--seconds S]` prints the JSON.
+(VmHWM from /proc/<pid>/status); then, on the same server with its default limits, `burst_clients` (32) clients for
+`burst_seconds`: the answers counted by status and the share of 503s (`clients_32`).
+`heavy_image_peak_rss(bundle_path)` is tests/service/test_memory.py's measurement (its server, limits and heaviest
+image, imported from there): the peak RSS while 4 clients post the heaviest image the limits allow, against the
+bound DEVELOPERS.md states. `python -m tests.bench.bench_service MODEL [--seconds S] [--heavy]` prints the JSON.
 """
 
 from __future__ import annotations
@@ -19,6 +23,7 @@ import tempfile
 import threading
 import time
 import zipfile
+from collections import Counter
 from pathlib import Path
 
 import httpx
@@ -103,11 +108,22 @@ def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Po
     raise RuntimeError("server not ready within 120 s")
 
 
-def _client(url: str, images: list[bytes], deadline: float, offset: int, out: list, lock: threading.Lock) -> None:
+def _client(
+    url: str,
+    images: list[bytes],
+    deadline: float,
+    offset: int,
+    out: list,
+    lock: threading.Lock,
+    *,
+    count: int | None = None,
+    token: str = STATION,
+) -> None:
+    """Posts images one after another until `deadline` (or `count` requests); (start, ms, status) per request."""
     mine = []
-    with httpx.Client(base_url=url, headers={"Authorization": f"Bearer {STATION}"}, timeout=60) as http:
+    with httpx.Client(base_url=url, headers={"Authorization": f"Bearer {token}"}, timeout=60) as http:
         i = offset
-        while time.perf_counter() < deadline:
+        while time.perf_counter() < deadline and (count is None or i - offset < count):
             t0 = time.perf_counter()
             try:
                 r = http.post("/v1/inspections", files={"image": ("part.png", images[i % len(images)])})
@@ -128,9 +144,80 @@ def _swap(url: str, data: bytes, at: float, result: dict) -> None:
     result.update(status=r.status_code, ms=round((time.perf_counter() - t0) * 1000, 1))
 
 
-def run(bundle_path, *, seconds: float = 30, clients: int = 8, image_size: int | None = None, threads: int = 2) -> dict:
+def _drive(
+    url: str, images: list[bytes], clients: int, *, seconds: float = 600, count: int | None = None, token: str = STATION
+) -> tuple[list, float]:
+    """`clients` threads posting `images` for `seconds` (or `count` requests each): the samples and the wall time."""
+    samples, lock = [], threading.Lock()
+    start = time.perf_counter()
+    workers = [
+        threading.Thread(
+            target=_client,
+            args=(url, images, start + seconds, k, samples, lock),
+            kwargs={"count": count, "token": token},
+        )
+        for k in range(clients)
+    ]
+    for w in workers:
+        w.start()
+    for w in workers:
+        w.join()
+    return samples, time.perf_counter() - start
+
+
+def _statuses(samples: list) -> dict[str, int]:
+    """Answers counted by status code (or by the exception's name where no answer came)."""
+    counts = Counter(str(status) for _, _, status in samples)
+    return dict(sorted(counts.items()))
+
+
+def _latency(samples: list, status=200) -> dict:
+    ms = np.array([m for _, m, st in samples if st == status])
+    return {
+        "latency_p50_ms": round(float(np.percentile(ms, 50)), 2) if len(ms) else None,
+        "latency_p99_ms": round(float(np.percentile(ms, 99)), 2) if len(ms) else None,
+    }
+
+
+def _default_limits() -> dict:
+    from service.settings import Settings
+
+    return {k: Settings.model_fields[k].default for k in ("max_decodes", "max_queue", "max_pixels")}
+
+
+def burst(url: str, images: list[bytes], *, clients: int = 32, seconds: float = 10) -> dict:
+    """`clients` concurrent clients for `seconds`: requests, answers by status, the share of 503s (busy, the decode
+    slots and the queue full) and the p50/p99 latency of the 200 answers and of the 503 answers."""
+    samples, wall = _drive(url, images, clients, seconds=seconds)
+    n = len(samples)
+    busy = sum(status == 503 for _, _, status in samples)
+    lat_503 = _latency(samples, 503)
+    return {
+        "clients": clients,
+        "seconds": round(wall, 2),
+        "requests": n,
+        "statuses": _statuses(samples),
+        "rate_503": round(busy / n, 4) if n else None,
+        "throughput_200_rps": round(sum(status == 200 for _, _, status in samples) / wall, 2),
+        **_latency(samples, 200),
+        "latency_503_p50_ms": lat_503["latency_p50_ms"],
+        "latency_503_p99_ms": lat_503["latency_p99_ms"],
+    }
+
+
+def run(
+    bundle_path,
+    *,
+    seconds: float = 30,
+    clients: int = 8,
+    image_size: int | None = None,
+    threads: int = 2,
+    burst_clients: int = 32,
+    burst_seconds: float = 10,
+) -> dict:
     """Starts the server, warms it up, drives it with `clients` threads for `seconds`, swaps the model (the same
-    bundle uploaded again, so it is validated and exported afresh) half way through, and stops it."""
+    bundle uploaded again, so it is validated and exported afresh) half way through, then (`burst_clients` > 0)
+    drives it with `burst_clients` threads for `burst_seconds`, and stops it."""
     bundle_path = Path(bundle_path)
     with zipfile.ZipFile(bundle_path) as zf:
         size = image_size or int(json.loads(zf.read("manifest.json"))["model"]["size"])
@@ -157,6 +244,10 @@ def run(bundle_path, *, seconds: float = 30, clients: int = 8, image_size: int |
                 w.join()
             wall = time.perf_counter() - start
             peak_kib = _status_kib(proc.pid, "VmHWM")
+            crowd = {}
+            if burst_clients:
+                crowd = burst(url, images, clients=burst_clients, seconds=burst_seconds)
+                crowd["limits"] = _default_limits()  # the server runs with the defaults
         finally:
             proc.terminate()
             try:
@@ -179,6 +270,68 @@ def run(bundle_path, *, seconds: float = 30, clients: int = 8, image_size: int |
         "startup_s": round(startup, 2),
         "rss_at_rest_mib": round(rest_kib / 1024, 1),
         "peak_rss_mib": round(peak_kib / 1024, 1),
+        **({f"clients_{burst_clients}": crowd} if crowd else {}),
+    }
+
+
+def _service_tests():
+    """tests/service/test_memory.py and service_testkit.py, imported as pytest imports them (tests/service on the
+    path), so the benchmark measures with the test's own server, image and limits."""
+    folder = str(Path(__file__).resolve().parents[1] / "service")
+    if folder not in sys.path:
+        sys.path.append(folder)
+    import service_testkit
+    import test_memory
+
+    return test_memory, service_testkit
+
+
+def heavy_image_peak_rss(
+    bundle_path, *, max_pixels: int | None = None, max_decodes: int = 2, clients: int = 4, per_client: int = 3
+) -> dict:
+    """tests/service/test_memory.py's check, measured: a fresh server with KNOWNGOOD_MAX_PIXELS = `max_pixels`
+    (default the test's 16 M), `max_decodes` decode slots and a queue of 1; one heavy request to warm up, the RSS
+    at rest, then `clients` clients posting the heaviest image the limits allow `per_client` times each; the peak
+    RSS (VmHWM) against the bound DEVELOPERS.md states: at rest + MAX_DECODES x 3 x BYTES_PER_PIXEL x MAX_PIXELS."""
+    test_memory, kit = _service_tests()
+    max_pixels = max_pixels or test_memory.MAX_PIXELS
+    limits = {"max_pixels": max_pixels, "max_decodes": max_decodes, "max_queue": 1}
+    image = test_memory.heaviest_png(max_pixels)
+    with Image.open(io.BytesIO(image)) as im:
+        width, height = im.size
+    with tempfile.TemporaryDirectory(prefix="kg-bench-heavy-") as tmp:
+        start = time.perf_counter()
+        server = kit.start_server(
+            Path(bundle_path).resolve(),
+            Path(tmp) / "memory",
+            extra_env={f"KNOWNGOOD_{k.upper()}": str(v) for k, v in limits.items()},
+        )
+        try:
+            with httpx.Client(base_url=server.url, headers=kit.STATION_AUTH, timeout=60) as http:
+                warm = http.post("/v1/inspections", files={"image": ("warm.png", image)})
+                warm.raise_for_status()
+            rest = test_memory._status_mib(server.proc.pid, "VmRSS")
+            samples, wall = _drive(server.url, [image], clients, count=per_client, token=kit.STATION)
+            peak = test_memory._status_mib(server.proc.pid, "VmHWM")
+        finally:
+            server.stop()
+        total = time.perf_counter() - start
+    decoded = test_memory.BYTES_PER_PIXEL * max_pixels / test_memory.MIB
+    bound = rest + max_decodes * 3 * decoded
+    return {
+        "limits": limits,
+        "clients": clients,
+        "requests_per_client": per_client,
+        "image_px": [width, height],
+        "image_kib": round(len(image) / 1024, 1),
+        "statuses": _statuses(samples),
+        "load_seconds": round(wall, 2),
+        "seconds": round(total, 2),
+        "rss_at_rest_mib": round(rest, 1),
+        "peak_rss_mib": round(peak, 1),
+        "bound_mib": round(bound, 1),
+        "bound": "RSS at rest + MAX_DECODES x 3 x (BYTES_PER_PIXEL x MAX_PIXELS) (DEVELOPERS.md)",
+        "within_bound": bool(peak < bound),
     }
 
 
@@ -189,10 +342,23 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument("--clients", type=int, default=8)
     parser.add_argument("--image-size", type=int, default=None, help="px per side (default: the model's size)")
     parser.add_argument("--threads", type=int, default=2, help="KNOWNGOOD_TORCH_THREADS for the server")
+    parser.add_argument("--burst-clients", type=int, default=32, help="clients of the second phase (0: none)")
+    parser.add_argument("--burst-seconds", type=float, default=10)
+    parser.add_argument("--heavy", action="store_true", help="also the heavy-image peak RSS (test_memory.py's check)")
+    parser.add_argument("--max-pixels", type=int, default=None, help="KNOWNGOOD_MAX_PIXELS for --heavy (16 M)")
     args = parser.parse_args(argv)
     result = run(
-        args.bundle, seconds=args.seconds, clients=args.clients, image_size=args.image_size, threads=args.threads
+        args.bundle,
+        seconds=args.seconds,
+        clients=args.clients,
+        image_size=args.image_size,
+        threads=args.threads,
+        burst_clients=args.burst_clients,
+        burst_seconds=args.burst_seconds,
     )
+    if args.heavy:
+        heavy = heavy_image_peak_rss(args.bundle, max_pixels=args.max_pixels)
+        result |= {"heavy_image_peak_rss_mib": heavy["peak_rss_mib"], "heavy_image_rss": heavy}
     print(json.dumps(result, indent=2))
     return 0
 

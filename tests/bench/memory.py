@@ -64,16 +64,32 @@ def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
     return out
 
 
-def service_section(bundle_path: Path, *, seconds: float, clients: int, image_size: int) -> dict:
-    """Drives the real server through `tests.bench.bench_service.run`; a note instead when it is not there."""
+def service_section(
+    bundle_path: Path, *, seconds: float, clients: int, image_size: int, burst_seconds: float = 10, heavy: bool = True
+) -> dict:
+    """Drives the real server through `tests.bench.bench_service.run` (which adds `clients_32`: 32 clients, the
+    share of 503s) and, with `heavy`, measures the peak RSS under the heaviest allowed image
+    (`bench_service.heavy_image_peak_rss`, tests/service/test_memory.py's check); a note instead when it is not
+    there."""
     try:
         bench_service = importlib.import_module("tests.bench.bench_service")
     except ImportError as exc:
         return {"skipped": f"tests/bench/bench_service.py is not importable ({exc})"}
     try:
-        return dict(bench_service.run(bundle_path, seconds=seconds, clients=clients, image_size=image_size))
+        out = dict(
+            bench_service.run(
+                bundle_path, seconds=seconds, clients=clients, image_size=image_size, burst_seconds=burst_seconds
+            )
+        )
     except Exception as exc:  # the service is a colleague's moving part; the rest of the benchmark still counts
         return {"skipped": f"bench_service.run failed: {type(exc).__name__}: {exc}"}
+    if heavy:
+        try:
+            rss = bench_service.heavy_image_peak_rss(bundle_path)
+            out |= {"heavy_image_peak_rss_mib": rss["peak_rss_mib"], "heavy_image_rss": rss}
+        except Exception as exc:
+            out["heavy_image_rss"] = {"skipped": f"heavy_image_peak_rss failed: {type(exc).__name__}: {exc}"}
+    return out
 
 
 def service_memory(service: dict) -> dict:
