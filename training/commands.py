@@ -12,7 +12,7 @@ from pathlib import Path
 
 import numpy as np
 
-from training import bundle
+from training import bundle, runtime
 from training.config import ModelConfig, TrainConfig
 from training.data import fingerprint, list_images, load_folder, read_image
 from training.errors import BadConfig, BadDataset, BadImage
@@ -194,6 +194,8 @@ def inspect(args) -> int:
     if args.heatmaps is not None and args.heatmaps.exists() and not args.heatmaps.is_dir():
         raise BadConfig(f"--heatmaps {args.heatmaps}: is a file; give a folder")
     det, _ = bundle.load(args.model)
+    if runtime.available():
+        det.use_onnx()  # the same graph and weights as eager PyTorch, about 3x faster on a CPU (tests pin equality)
     files = _expand(args.paths)
     names = {}
     if args.heatmaps is not None:

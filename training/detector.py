@@ -55,7 +55,7 @@ class Detector:
 
     def prepare(self, images: list[np.ndarray]) -> torch.Tensor:
         """(C, H, W) float arrays at any size -> one (B, C, h, w) batch at the working shape and colour mode
-        (whole-image models; a tiled model's tiles come from `tiles`)."""
+        (whole-image models; a tiled model's tiles come from `prepare_one`)."""
         return to_model_input(images, size=self.cfg.shape, channels=self.cfg.channels)
 
     def score_batch(self, x: torch.Tensor, batch: int | None = None) -> tuple[np.ndarray, torch.Tensor]:
