@@ -153,6 +153,7 @@ def choose_terms(
     good_x: torch.Tensor,
     shifts: tuple[int, ...] = (0, 1),
     feature_critic=None,
+    fit_phi: torch.Tensor | None = None,
     seed: int = 0,
 ) -> Choice:
     """Fits every candidate term (pretrained reference on `fit_x`, standardisation on `std_x`), pastes synthetic
@@ -161,7 +162,8 @@ def choose_terms(
     graphs = candidate_graphs(base, nets, perceptual, shifts, feature_critic)
     bad_x, masks = paste_defects(good_x, copies=SYNTHETIC_COPIES, seed=seed)
     z_good, z_bad = {}, {}
-    fit_phi = next((g.pretrained_features(fit_x) for g in graphs.values() if g.perceptual is not None), None)
+    if fit_phi is None:  # the caller's pretrained features of fit_x, when it has them: no second pass
+        fit_phi = next((g.pretrained_features(fit_x) for g in graphs.values() if g.perceptual is not None), None)
     for name, graph in graphs.items():
         graph.fit_features(fit_x, seed=seed, feats=fit_phi)
         graph.fit_standardisation(std_x)

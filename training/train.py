@@ -60,12 +60,13 @@ def train_bundle(
     result = fit(sets["fit"], hold, model, train, checkpoint=ckpt, progress=progress)
     nets = (result.encoder, result.generator, result.critic)
     feature_critic = None
+    phi = None  # pretrained features of the fit split: computed once, for the feature critic and the choice
+    if perceptual is not None:
+        phi = torch.cat([perceptual(sets["fit"][i : i + 32]) for i in range(0, len(sets["fit"]), 32)])
     if model.adversarial > 0:
         if progress:
             print("training the feature-space critic ...", flush=True)
-        phi = torch.cat([perceptual(sets["fit"][i : i + 32]) for i in range(0, len(sets["fit"]), 32)])
         feature_critic = fit_feature_critic(phi, steps=train.critic_feature_steps, seed=train.seed)
-        del phi
     choice = None
     if train.choose_terms:
         if progress:
@@ -79,9 +80,11 @@ def train_bundle(
             good_x=sets["cal"],
             shifts=train.residual_shifts,
             feature_critic=feature_critic,
+            fit_phi=phi,
             seed=train.seed,
         )
         model = choice.cfg
+    del phi
     graph = ScoringGraph(
         model, *nets, perceptual=perceptual if model.pretrained else None, feature_critic=feature_critic
     )
