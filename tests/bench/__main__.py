@@ -41,7 +41,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         metavar="NAME",
         help=f"dataset to run (repeatable); one of {', '.join(datasets.NAMES)}",
     )
-    p.add_argument("--minutes", type=float, default=None, help="knowngood training budget per dataset (4; quick 0.5)")
+    p.add_argument("--minutes", type=float, default=None, help="knowngood training budget per dataset (2.5, as the demo; quick 0.5)")
     p.add_argument("--cache", type=Path, default=Path("bench_out/cache"), help="where the demo parts are rendered")
     p.add_argument(
         "--skip",
@@ -52,7 +52,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
     )
     args = p.parse_args(argv)
     args.names = args.only or (list(QUICK_DATASETS) if args.quick else list(datasets.NAMES))
-    args.minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 4.0)
+    args.minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 2.5)
     args.speed_repeats = 5 if args.quick else 30
     args.memory_steps = 5 if args.quick else 50
     args.service_seconds = 5 if args.quick else 30
