@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
+import json
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
@@ -52,6 +54,14 @@ class Detector:
     @property
     def model_id(self) -> str:
         return self.manifest.get("model_id", "unsaved")
+
+    @property
+    def revision(self) -> str:
+        """The threshold's identity: 8 hex digits of the sha256 of the manifest's `threshold` section (value, how
+        and when it was set, the rates it achieved). `tune` or a threshold change gives a new revision while the
+        model id (the weights) stays; the two together say which decision rule made a verdict."""
+        section = json.dumps(self.manifest.get("threshold", {}), sort_keys=True, default=str)
+        return hashlib.sha256(section.encode()).hexdigest()[:8]
 
     def prepare(self, images: list[np.ndarray]) -> torch.Tensor:
         """(C, H, W) float arrays at any size -> one (B, C, h, w) batch at the working shape and colour mode
