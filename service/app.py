@@ -11,7 +11,7 @@ from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 from starlette.concurrency import run_in_threadpool
 
-from service import problems, restore
+from service import docs, problems, restore
 from service.admission import Stage
 from service.deps import ServiceState, check_admin
 from service.files import FileStore
@@ -96,7 +96,14 @@ async def lifespan(app: FastAPI):
 
 def create_app(settings: Settings | None = None) -> FastAPI:
     """The app. With `settings`, they replace `get_settings()` (the CLI passes the flags it parsed this way)."""
-    app = FastAPI(title="knowngood", version=__version__, description=DESCRIPTION, lifespan=lifespan)
+    app = FastAPI(
+        title="knowngood",
+        version=__version__,
+        description=DESCRIPTION,
+        lifespan=lifespan,
+        docs_url=None,  # `docs.install` serves /docs from the installed package, never from a CDN
+        redoc_url=None,  # ReDoc would load its script from a CDN: not offered
+    )
     if settings is not None:
         app.dependency_overrides[get_settings] = lambda: settings
     app.state.metrics = Metrics()
@@ -106,6 +113,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             route.summary = (route.endpoint.__doc__ or "").strip().splitlines()[0] or None
         app.include_router(router)
     app.mount("/static", StaticFiles(directory=ops.STATIC), name="static")
+    docs.install(app)
 
     def body_limit(method: str, path: str, headers) -> int:  # requests arrive only after the lifespan set the state
         state: ServiceState = app.state.service

@@ -11,17 +11,20 @@ from __future__ import annotations
 import threading
 from collections import deque
 from dataclasses import dataclass
+from typing import Literal, get_args
 
 import numpy as np
 
 from training.frechet import frechet_distance, gaussian_stats, reference_distance
 
+Status = Literal["ok", "drifting", "not_enough_images", "no_reference"]
+STATES: tuple[str, ...] = get_args(Status)  # every state an assessment can be in (/metrics shows each)
 STD_FLOOR = 0.1  # the reference spread is at least this share of its mean (a tiny holdout can give almost none)
 
 
 @dataclass(frozen=True)
 class DriftReport:
-    status: str  # ok, drifting, not_enough_images, no_reference
+    status: Status
     detail: str
     images: int
     needed: int

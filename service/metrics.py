@@ -1,7 +1,7 @@
 """Prometheus metrics with `prometheus-client` (format, escaping and histograms are its job): request counts and a
-latency histogram by route template, verdict counts, busy refusals, the model as an info gauge and score quantiles
-over a sliding window. Every label set is bounded: methods outside the HTTP standard count as "other", paths that
-match no route as "unmatched"."""
+latency histogram by route template, verdict counts, busy refusals, the model as an info gauge, score quantiles
+over a sliding window and the drift assessment (its state, distance and reference). Every label set is bounded:
+methods outside the HTTP standard count as "other", paths that match no route as "unmatched"."""
 
 from __future__ import annotations
 
@@ -15,6 +15,8 @@ from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.metrics_core import GaugeMetricFamily, Metric
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
+from service.drift import STATES, DriftReport
+
 CONTENT_TYPE = CONTENT_TYPE_PLAIN_0_0_4
 BUCKETS = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)  # seconds
 QUANTILES = (0.5, 0.9, 0.99)
@@ -23,19 +25,36 @@ disable_created_metrics()  # no *_created series: half the series, and nothing a
 METHODS = frozenset({"GET", "HEAD", "POST", "PUT", "PATCH", "DELETE", "OPTIONS"})
 
 
+DRIFT_GAUGES = {  # DriftReport field -> (metric name, help)
+    "images": ("knowngood_drift_images", "Production images in the served model's drift window."),
+    "distance": (
+        "knowngood_drift_distance",
+        "Fréchet distance of the recent production images to the training images (critic features).",
+    ),
+    "reference_mean": (
+        "knowngood_drift_reference_mean",
+        "Mean distance of equally many known-good holdout images to the training images: the reference.",
+    ),
+    "reference_std": ("knowngood_drift_reference_std", "Spread of that reference distance."),
+    "limit": ("knowngood_drift_limit", "Drifting when the distance is above this limit."),
+}
+
+
 class _Served:
-    """Collects what is true at scrape time: the model being served and the recent scores' quantiles."""
+    """Collects what is true at scrape time: the model being served, the recent scores' quantiles and drift."""
 
     def __init__(self) -> None:
         self.lock = threading.Lock()
         self.scores: deque[float] = deque(maxlen=SCORE_WINDOW)
         self.score_sum = 0.0
         self.score_count = 0
-        self.model: tuple[str, str, float] | None = None  # id, sha256, threshold: set just before each scrape
+        self.model: tuple[str, str, str, float] | None = None  # id, sha256, revision, threshold: set before a scrape
+        self.drift: DriftReport | None = None  # likewise
 
     def collect(self):
         with self.lock:
             scores, total, count, model = list(self.scores), self.score_sum, self.score_count, self.model
+            drift = self.drift
         summary = Metric(
             "knowngood_anomaly_score",
             f"Anomaly scores (higher = less like known-good); quantiles over the last {SCORE_WINDOW}.",
@@ -48,15 +67,34 @@ class _Served:
         summary.add_sample("knowngood_anomaly_score_count", {}, count)
         yield summary
         info = GaugeMetricFamily(
-            "knowngood_model_info", "The model being served (1 = loaded).", labels=["model_id", "sha256"]
+            "knowngood_model_info",
+            "The model being served (1 = loaded); the revision changes with each threshold change.",
+            labels=["model_id", "sha256", "revision"],
         )
         if model is not None:
-            info.add_metric([model[0], model[1]], 1)
+            info.add_metric([model[0], model[1], model[2]], 1)
         yield info
         if model is not None:
             yield GaugeMetricFamily(
-                "knowngood_threshold", "Current threshold: flag when score > threshold.", value=model[2]
+                "knowngood_threshold", "Current threshold: flag when score > threshold.", value=model[3]
             )
+        if drift is not None:
+            yield from _drift_families(drift)
+
+
+def _drift_families(report: DriftReport):
+    state = GaugeMetricFamily(
+        "knowngood_drift_state",
+        "Drift assessment of the served model: 1 for its state now, 0 for the others.",
+        labels=["state"],
+    )
+    for name in STATES:
+        state.add_metric([name], 1.0 if report.status == name else 0.0)
+    yield state
+    for field, (name, help_text) in DRIFT_GAUGES.items():
+        value = getattr(report, field)
+        if value is not None:  # not assessed yet (too few images, no reference): no sample rather than a made-up one
+            yield GaugeMetricFamily(name, help_text, value=float(value))
 
 
 class Metrics:
@@ -106,9 +144,21 @@ class Metrics:
     def observe_busy(self, stage: str) -> None:
         self.busy.labels(stage).inc()
 
-    def render(self, *, model_id: str | None, model_sha256: str | None, threshold: float | None) -> str:
+    def render(
+        self,
+        *,
+        model_id: str | None,
+        model_sha256: str | None = None,
+        model_revision: str | None = None,
+        threshold: float | None = None,
+        drift: DriftReport | None = None,
+    ) -> str:
+        """The text exposition; the served model and its drift assessment as they are now (None: no model)."""
         with self._served.lock:
-            self._served.model = None if model_id is None else (model_id, model_sha256 or "", float(threshold))
+            self._served.model = (
+                None if model_id is None else (model_id, model_sha256 or "", model_revision or "", float(threshold))
+            )
+            self._served.drift = drift
         return generate_latest(self.registry).decode()
 
 

@@ -4,6 +4,7 @@ end, so a swap never changes the model under a request in flight; the one before
 from __future__ import annotations
 
 import dataclasses
+import json
 import threading
 from dataclasses import dataclass
 
@@ -45,6 +46,13 @@ class LoadedModel:
             "replaced": {k: v for k, v in previous.items() if k != "replaced"},
         }
         det = dataclasses.replace(self.detector, threshold=float(value), manifest=manifest)
+        return dataclasses.replace(self, detector=det)
+
+    def with_threshold_section(self, section: dict) -> LoadedModel:
+        """The same model served with this manifest threshold section, as a model event recorded it: the same
+        value, the same who/when/why, so the same revision."""
+        manifest = {**self.detector.manifest, "threshold": section}
+        det = dataclasses.replace(self.detector, threshold=float(section["value"]), manifest=manifest)
         return dataclasses.replace(self, detector=det)
 
 
@@ -90,6 +98,8 @@ def model_event(
         caller=caller,
         operator=operator,
         reason=reason,
+        revision=det.revision,
+        threshold_section=json.dumps(det.manifest.get("threshold", {}), sort_keys=True),
     )
 
 

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import functools
+
 import numpy as np
 import torch
 import torch.nn.functional as F
@@ -38,6 +40,15 @@ def overlay_png(image: np.ndarray, heat: np.ndarray, *, height: int, width: int,
     img = _resize(torch.from_numpy(np.ascontiguousarray(image, dtype=np.float32)), size)
     hm = _resize(torch.from_numpy(np.ascontiguousarray(heat, dtype=np.float32))[None], size)[0]
     return heatmap_png_bytes(img, hm, vmax_for(threshold, hm))
+
+
+@functools.cache
+def legend_png(steps: int = 256) -> bytes:
+    """The overlays' colour scale as a (1, steps) PNG: heat from 0 (left) to full tint (right) on a mid-grey part,
+    drawn by the function that draws every overlay, so the page's legend cannot drift from the overlays."""
+    ramp = np.linspace(0, 1, steps, dtype=np.float32)[None]  # (1, steps)
+    grey = np.full((1, 1, steps), 0.5, dtype=np.float32)  # (C=1, 1, steps)
+    return heatmap_png_bytes(grey, ramp, 1.0)
 
 
 def _resize(t: torch.Tensor, size: tuple[int, int]) -> np.ndarray:

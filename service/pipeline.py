@@ -21,7 +21,7 @@ from service.model_slot import LoadedModel
 from service.overlay import overlay_base, overlay_png, overlay_size
 from service.schemas import ImageInfo, InspectionCreated, InspectionOut, ModelRef, ReviewOut
 from service.settings import Caller
-from service.store import InspectionRecord, to_iso, utc_now
+from service.store import InspectionRecord, Review, to_iso, utc_now
 from training.data import decode_image
 from training.detector import Prepared, verdict
 from training.errors import BadImage
@@ -158,6 +158,7 @@ def _record(
         image_width=decoded.width,
         image_height=decoded.height,
         model_id=det.model_id,
+        model_revision=det.revision,
         model_sha256=det.sha256,
         score=score,
         threshold=float(det.threshold),
@@ -175,10 +176,20 @@ def _created(r: InspectionRecord, decoded: Decoded, heat: np.ndarray, *, inline:
     )
 
 
+def review_out(r: Review) -> ReviewOut:
+    return ReviewOut(label=r.label, operator=r.operator, time=r.time, defect_class=r.defect_class, note=r.note)
+
+
 def inspection_out(r: InspectionRecord) -> InspectionOut:
     review = None
-    if r.review_label is not None:
-        review = ReviewOut(label=r.review_label, operator=r.review_operator, time=r.review_time)
+    if r.review_label is not None:  # the latest review is the current label
+        review = ReviewOut(
+            label=r.review_label,
+            operator=r.review_operator,
+            time=r.review_time,
+            defect_class=r.review_defect_class,
+            note=r.review_note,
+        )
     return InspectionOut(
         id=r.id,
         time=dt.datetime.fromisoformat(r.time),
@@ -187,11 +198,12 @@ def inspection_out(r: InspectionRecord) -> InspectionOut:
         verdict=r.verdict,
         score=r.score,
         threshold=r.threshold,
-        model=ModelRef(id=r.model_id, sha256=r.model_sha256),
+        model=ModelRef(id=r.model_id, revision=r.model_revision, sha256=r.model_sha256),
         image=ImageInfo(sha256=r.image_sha256, width=r.image_width, height=r.image_height),
         elapsed_ms=r.elapsed_ms,
         heatmap_url=f"/v1/inspections/{r.id}/heatmap.png" if r.files_kept else None,
         review=review,
+        review_count=r.review_count,
     )
 
 

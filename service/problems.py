@@ -23,6 +23,7 @@ from training.errors import KnowngoodError
 
 MEDIA_TYPE = "application/problem+json"
 TYPE_PREFIX = "urn:knowngood:problem:"
+PROBLEM_REF = "#/components/schemas/ProblemOut"
 log = logging.getLogger("knowngood.service")
 
 
@@ -128,6 +129,10 @@ def _openapi(app: FastAPI) -> dict:
     schema = get_openapi(title=app.title, version=app.version, description=app.description, routes=app.routes)
     for path in schema.get("paths", {}).values():
         for operation in path.values():
+            if "requestBody" in operation and "400" not in operation["responses"]:
+                # FastAPI answers 400 to any body it cannot parse (JSON that is not UTF-8, broken multipart)
+                bad_body = {"description": "Bad Request", "content": {MEDIA_TYPE: {"schema": {"$ref": PROBLEM_REF}}}}
+                operation["responses"] = dict(sorted({**operation["responses"], "400": bad_body}.items()))
             for response in operation.get("responses", {}).values():
                 content = response.get("content", {})
                 for media in list(content):

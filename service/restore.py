@@ -5,6 +5,7 @@ model it replaces then becomes the rollback target."""
 
 from __future__ import annotations
 
+import json
 import logging
 from dataclasses import dataclass
 from pathlib import Path
@@ -86,11 +87,16 @@ def _command_line(files: FileStore, settings: Settings) -> LoadedModel | None:
 
 def _restored(store: SqliteStore, loaded: LoadedModel | None) -> LoadedModel | None:
     """The threshold this very bundle (same sha256) was last served with, if a change over the API made it differ
-    from the bundle's own: a restart must not quietly undo an engineer's threshold change."""
+    from the bundle's own: a restart must not quietly undo an engineer's threshold change, nor change the revision
+    the verdicts since were given under."""
     if loaded is None:
         return None
     sha = loaded.detector.sha256
     last = store.latest_event(model_sha256=sha)
+    if last is not None and last.threshold_section is not None:  # schema 3 on: the very section, so the revision
+        section = json.loads(last.threshold_section)
+        same = section == loaded.detector.manifest.get("threshold")
+        return loaded if same else loaded.with_threshold_section(section)
     if last is None or last.threshold == loaded.detector.threshold:
         return loaded
     change = store.latest_event(model_sha256=sha, kind="threshold")  # who set it, when and why

@@ -5,12 +5,17 @@ from __future__ import annotations
 import datetime as dt
 from typing import Literal
 
-from pydantic import BaseModel, ConfigDict, Field
+from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator
+
+from service.drift import Status
 
 Verdict = Literal["pass", "flag"]
 Label = Literal["good", "defective"]
 NO_CONTROL = r"^[^\x00-\x1f\x7f-\x9f]*$"  # text fields refuse C0 controls, DEL and C1 (log and CSV injection)
 Operator = Field(min_length=1, max_length=100, pattern=NO_CONTROL, examples=["line 3, shift B"])
+REASON_HELP = "why: kept with the model event"
+# a defect class names a folder of a holdout (`defective/<class>/`): letters, digits, '_' and '-' only
+DEFECT_CLASS = r"^[A-Za-z0-9][A-Za-z0-9_-]*$"
 
 
 class ProblemOut(BaseModel):
@@ -30,6 +35,10 @@ class FieldErrorOut(BaseModel):
 
 class ModelRef(BaseModel):
     id: str = Field(description="model id: the first 16 hex digits of the weights' SHA-256")
+    revision: str | None = Field(
+        description="8 hex digits of the threshold section: changes with each threshold change while the id stays "
+        "(null on rows stored before revisions were recorded)"
+    )
     sha256: str = Field(description="SHA-256 of the bundle file")
 
 
@@ -43,6 +52,15 @@ class ReviewOut(BaseModel):
     label: Label
     operator: str
     time: dt.datetime
+    defect_class: str | None = Field(description="only with label 'defective', when the operator named one")
+    note: str | None
+
+
+class ReviewList(BaseModel):
+    """Every review of one inspection, oldest first: the last one is its current label."""
+
+    items: list[ReviewOut]
+    count: int
 
 
 class InspectionOut(BaseModel):
@@ -57,9 +75,13 @@ class InspectionOut(BaseModel):
     threshold: float = Field(description="the part is flagged when score > threshold")
     model: ModelRef
     image: ImageInfo
-    elapsed_ms: float = Field(description="time the service spent on this image: decode, score, store")
+    elapsed_ms: float = Field(
+        description="time the service spent decoding and scoring the images of this request (a batch: all of "
+        "them), measured before the audit store write"
+    )
     heatmap_url: str | None = Field(description="overlay PNG; null once retention has deleted the heatmap")
-    review: ReviewOut | None
+    review: ReviewOut | None = Field(description="the latest review: the current label (null: not reviewed)")
+    review_count: int = Field(description="reviews kept for this inspection (GET .../reviews lists them)")
 
 
 class InspectionCreated(InspectionOut):
@@ -72,8 +94,11 @@ class BatchCreated(BaseModel):
 
 
 class InspectionList(BaseModel):
-    items: list[InspectionOut]
-    count: int
+    items: list[InspectionOut] = Field(description="newest first")
+    count: int = Field(description="items on this page")
+    total: int = Field(description="inspections matching the filters, on all pages")
+    limit: int
+    offset: int
 
 
 class ReviewIn(BaseModel):
@@ -83,6 +108,24 @@ class ReviewIn(BaseModel):
 
     label: Label
     operator: str = Operator
+    defect_class: str | None = Field(None, max_length=64, pattern=DEFECT_CLASS, examples=["scratch"])
+    note: str | None = Field(None, max_length=500, pattern=NO_CONTROL)
+
+    @field_validator("defect_class")
+    @classmethod
+    def _only_when_defective(cls, value: str | None, info: ValidationInfo) -> str | None:
+        if value is not None and info.data.get("label") != "defective":
+            raise ValueError("a defect class goes with label 'defective' only")
+        return value
+
+
+class ChangeIn(BaseModel):
+    """Who rolls the model back and why: recorded with the model event."""
+
+    model_config = ConfigDict(extra="forbid", strict=True)
+
+    operator: str = Operator
+    reason: str = Field(min_length=1, max_length=500, pattern=NO_CONTROL, description=REASON_HELP)
 
 
 class ThresholdIn(BaseModel):
@@ -103,7 +146,8 @@ class ThresholdInfo(BaseModel):
 
 
 class ModelOut(BaseModel):
-    id: str
+    id: str = Field(description="model id: derived from the weights")
+    revision: str = Field(description="8 hex digits of the threshold section: changes with each threshold change")
     sha256: str
     threshold: ThresholdInfo
     size: int = Field(description="working resolution in px (square)")
@@ -133,7 +177,7 @@ class ModelEventList(BaseModel):
 class DriftOut(BaseModel):
     """Fréchet distance on critic features: recent production images against the training reference."""
 
-    status: Literal["ok", "drifting", "not_enough_images", "no_reference"]
+    status: Status
     drifting: bool | None = Field(description="null while there is not enough to say")
     detail: str
     model_id: str

@@ -1,5 +1,6 @@
-"""The audit store: one row per accepted inspection, reviews, and model events (loads, swaps, rollbacks, threshold
-changes). SQLite with WAL is the embedded default; `AuditStore` is the interface a server database would implement.
+"""The audit store: one row per accepted inspection, every review, and model events (loads, swaps, rollbacks,
+threshold changes). SQLite with WAL is the embedded default; `AuditStore` is the interface a server database would
+implement. The schema and its migrations are in `store_schema.py`.
 
 The data functions take their connection explicitly and keyword-only arguments; `SqliteStore` hands each thread its
 own connection (FastAPI runs plain `def` routes in a thread pool) and calls them.
@@ -15,58 +16,7 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Protocol
 
-SCHEMA_VERSION = 2  # 2: the serving table (what a restart serves)
-SCHEMA = """
-CREATE TABLE IF NOT EXISTS inspections (
-    seq INTEGER PRIMARY KEY AUTOINCREMENT,
-    id TEXT NOT NULL UNIQUE,
-    time TEXT NOT NULL,
-    station TEXT,
-    part_id TEXT,
-    caller TEXT NOT NULL,
-    image_sha256 TEXT NOT NULL,
-    image_width INTEGER NOT NULL,
-    image_height INTEGER NOT NULL,
-    model_id TEXT NOT NULL,
-    model_sha256 TEXT NOT NULL,
-    score REAL NOT NULL,
-    threshold REAL NOT NULL,
-    verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'flag')),
-    elapsed_ms REAL NOT NULL,
-    files_kept INTEGER NOT NULL DEFAULT 1,
-    review_label TEXT CHECK (review_label IN ('good', 'defective')),
-    review_operator TEXT,
-    review_time TEXT
-);
-CREATE INDEX IF NOT EXISTS inspections_time ON inspections (time);
-CREATE INDEX IF NOT EXISTS inspections_queue ON inspections (verdict, review_label);
-CREATE TABLE IF NOT EXISTS reviews (
-    seq INTEGER PRIMARY KEY AUTOINCREMENT,
-    inspection_id TEXT NOT NULL REFERENCES inspections (id),
-    time TEXT NOT NULL,
-    label TEXT NOT NULL,
-    operator TEXT NOT NULL,
-    caller TEXT NOT NULL
-);
-CREATE TABLE IF NOT EXISTS model_events (
-    seq INTEGER PRIMARY KEY AUTOINCREMENT,
-    time TEXT NOT NULL,
-    kind TEXT NOT NULL CHECK (kind IN ('load', 'swap', 'rollback', 'threshold')),
-    model_id TEXT NOT NULL,
-    model_sha256 TEXT NOT NULL,
-    threshold REAL NOT NULL,
-    previous_threshold REAL,
-    caller TEXT NOT NULL,
-    operator TEXT,
-    reason TEXT
-);
-CREATE TABLE IF NOT EXISTS serving (
-    id INTEGER PRIMARY KEY CHECK (id = 1),
-    current_sha256 TEXT NOT NULL,
-    previous_sha256 TEXT,
-    startup_sha256 TEXT
-);
-"""
+from service.store_schema import SCHEMA_VERSION, create_schema  # noqa: F401 (the store's schema, re-exported)
 
 
 def utc_now() -> str:
@@ -91,15 +41,46 @@ class InspectionRecord:
     image_width: int
     image_height: int
     model_id: str
+    model_revision: str | None  # None on rows stored before revisions were recorded
     model_sha256: str
     score: float
     threshold: float
     verdict: str
     elapsed_ms: float
     files_kept: bool = True
+    # the current label: the latest of the inspection's reviews (read from `reviews`, never stored on the row)
     review_label: str | None = None
     review_operator: str | None = None
     review_time: str | None = None
+    review_defect_class: str | None = None
+    review_note: str | None = None
+    review_count: int = 0
+
+
+@dataclass(frozen=True)
+class Review:
+    """One operator's confirmation of a verdict; an inspection keeps all of them, the latest is its label."""
+
+    inspection_id: str
+    time: str
+    label: str  # good, defective
+    operator: str
+    caller: str
+    defect_class: str | None = None
+    note: str | None = None
+
+
+@dataclass(frozen=True)
+class InspectionFilter:
+    """Which inspections a list takes: a None field matches every row. since <= time < until (UTC ISO text);
+    reviewed False = awaiting review."""
+
+    verdict: str | None = None
+    station: str | None = None
+    part_id: str | None = None
+    reviewed: bool | None = None
+    since: str | None = None
+    until: str | None = None
 
 
 @dataclass(frozen=True)
@@ -113,6 +94,8 @@ class ModelEvent:
     previous_threshold: float | None = None
     operator: str | None = None
     reason: str | None = None
+    revision: str | None = None  # the model's revision once the event took effect (None: recorded before schema 3)
+    threshold_section: str | None = None  # the manifest's threshold section (JSON) the revision is taken from
 
 
 @dataclass(frozen=True)
@@ -124,8 +107,24 @@ class Serving:
     startup_sha256: str | None  # the command-line bundle at the last start: a different one there replaces current
 
 
-_COLUMNS = [f.name for f in fields(InspectionRecord)]
+_CURRENT_REVIEW = {
+    "review_label": "r.label",
+    "review_operator": "r.operator",
+    "review_time": "r.time",
+    "review_defect_class": "r.defect_class",
+    "review_note": "r.note",
+    "review_count": "(SELECT COUNT(*) FROM reviews c WHERE c.inspection_id = i.id)",
+}
+_COLUMNS = [f.name for f in fields(InspectionRecord) if f.name not in _CURRENT_REVIEW]  # stored on the row
+_REVIEW_COLUMNS = [f.name for f in fields(Review)]
 _EVENT_COLUMNS = [f.name for f in fields(ModelEvent)]
+# each row with its latest review: the one place that says which review is current
+_SELECT = (
+    f"SELECT i.seq, {', '.join(f'i.{c}' for c in _COLUMNS)}, "
+    f"{', '.join(f'{expr} AS {name}' for name, expr in _CURRENT_REVIEW.items())} FROM inspections i "
+    "LEFT JOIN reviews r ON r.seq = (SELECT MAX(m.seq) FROM reviews m WHERE m.inspection_id = i.id)"
+)
+EVERY = InspectionFilter()
 
 
 class AuditStore(Protocol):
@@ -134,16 +133,23 @@ class AuditStore(Protocol):
     def add_inspections(self, *, records: Sequence[InspectionRecord]) -> None: ...
     def get_inspection(self, *, inspection_id: str) -> InspectionRecord | None: ...
     def list_inspections(
+        self, *, where: InspectionFilter = EVERY, limit: int = 100, offset: int = 0
+    ) -> list[InspectionRecord]: ...
+    def find_inspections(
+        self, *, where: InspectionFilter, limit: int, offset: int
+    ) -> tuple[list[InspectionRecord], int]: ...
+    def iter_inspections(self, *, since: str | None, until: str | None) -> Iterator[InspectionRecord]: ...
+    def add_review(
         self,
         *,
-        verdict: str | None = None,
-        since: str | None = None,
-        until: str | None = None,
-        reviewed: bool | None = None,
-        limit: int = 100,
-    ) -> list[InspectionRecord]: ...
-    def iter_inspections(self, *, since: str | None, until: str | None) -> Iterator[InspectionRecord]: ...
-    def add_review(self, *, inspection_id: str, label: str, operator: str, caller: str) -> InspectionRecord | None: ...
+        inspection_id: str,
+        label: str,
+        operator: str,
+        caller: str,
+        defect_class: str | None = None,
+        note: str | None = None,
+    ) -> InspectionRecord | None: ...
+    def reviews(self, *, inspection_id: str) -> list[Review]: ...
     def add_model_event(self, *, event: ModelEvent, serving: Serving | None = None) -> None: ...
     def serving(self) -> Serving | None: ...
     def model_events(self, *, limit: int = 50) -> list[ModelEvent]: ...
@@ -169,14 +175,6 @@ def connect(path: Path) -> sqlite3.Connection:
     return conn
 
 
-def create_schema(conn: sqlite3.Connection) -> None:
-    version = conn.execute("PRAGMA user_version").fetchone()[0]
-    if version > SCHEMA_VERSION:
-        raise RuntimeError(f"the audit database has schema {version}, newer than this software ({SCHEMA_VERSION})")
-    conn.executescript(SCHEMA)
-    conn.execute(f"PRAGMA user_version={SCHEMA_VERSION}")
-
-
 def insert_inspections(conn: sqlite3.Connection, *, records: Sequence[InspectionRecord]) -> None:
     """All rows in one transaction: a batch is stored whole or not at all."""
     sql = f"INSERT INTO inspections ({', '.join(_COLUMNS)}) VALUES ({', '.join('?' * len(_COLUMNS))})"
@@ -190,70 +188,73 @@ def insert_inspections(conn: sqlite3.Connection, *, records: Sequence[Inspection
 
 
 def _record(row: sqlite3.Row) -> InspectionRecord:
-    values = {c: row[c] for c in _COLUMNS}
+    values = {f.name: row[f.name] for f in fields(InspectionRecord)}
     values["files_kept"] = bool(values["files_kept"])
     return InspectionRecord(**values)
 
 
 def select_inspection(conn: sqlite3.Connection, *, inspection_id: str) -> InspectionRecord | None:
-    row = conn.execute("SELECT * FROM inspections WHERE id = ?", (inspection_id,)).fetchone()
+    row = conn.execute(f"{_SELECT} WHERE i.id = ?", (inspection_id,)).fetchone()
     return _record(row) if row else None
 
 
-def select_inspections(
-    conn: sqlite3.Connection,
-    *,
-    verdict: str | None = None,
-    since: str | None = None,
-    until: str | None = None,
-    reviewed: bool | None = None,
-    limit: int = 100,
-) -> list[InspectionRecord]:
-    """Newest first; `reviewed` False = awaiting review, True = reviewed, None = either."""
-    where, params = [], []
-    for clause, value in (("verdict = ?", verdict), ("time >= ?", since), ("time < ?", until)):
+def _where(f: InspectionFilter) -> tuple[str, list]:
+    clauses, params = [], []
+    for clause, value in (
+        ("i.verdict = ?", f.verdict),
+        ("i.station = ?", f.station),
+        ("i.part_id = ?", f.part_id),
+        ("i.time >= ?", f.since),
+        ("i.time < ?", f.until),
+    ):
         if value is not None:
-            where.append(clause)
+            clauses.append(clause)
             params.append(value)
-    if reviewed is not None:
-        where.append(f"review_label IS {'NOT ' if reviewed else ''}NULL")
-    sql = "SELECT * FROM inspections" + (f" WHERE {' AND '.join(where)}" if where else "")
-    sql += " ORDER BY seq DESC LIMIT ?"
-    return [_record(r) for r in conn.execute(sql, (*params, limit))]
+    if f.reviewed is not None:
+        clauses.append(f"{'' if f.reviewed else 'NOT '}EXISTS (SELECT 1 FROM reviews x WHERE x.inspection_id = i.id)")
+    return (f" WHERE {' AND '.join(clauses)}" if clauses else ""), params
+
+
+def select_inspections(
+    conn: sqlite3.Connection, *, where: InspectionFilter = EVERY, limit: int = 100, offset: int = 0
+) -> list[InspectionRecord]:
+    """Newest first, `offset` rows skipped."""
+    sql, params = _where(where)
+    rows = conn.execute(f"{_SELECT}{sql} ORDER BY i.seq DESC LIMIT ? OFFSET ?", (*params, limit, offset))
+    return [_record(r) for r in rows]
+
+
+def count_selected(conn: sqlite3.Connection, *, where: InspectionFilter = EVERY) -> int:
+    sql, params = _where(where)
+    return conn.execute(f"SELECT COUNT(*) FROM inspections i{sql}", params).fetchone()[0]
 
 
 def select_page(
     conn: sqlite3.Connection, *, since: str | None, until: str | None, after_seq: int, limit: int
 ) -> list[tuple[int, InspectionRecord]]:
     """(seq, record) pairs after `after_seq`, oldest first: keyset pagination for exports of any length."""
-    sql = (
-        "SELECT * FROM inspections WHERE seq > ? AND (? IS NULL OR time >= ?) AND (? IS NULL OR time < ?) "
-        "ORDER BY seq LIMIT ?"
-    )
+    window = "(? IS NULL OR i.time >= ?) AND (? IS NULL OR i.time < ?)"
+    sql = f"{_SELECT} WHERE i.seq > ? AND {window} ORDER BY i.seq LIMIT ?"
     rows = conn.execute(sql, (after_seq, since, since, until, until, limit))
     return [(r["seq"], _record(r)) for r in rows]
 
 
-def insert_review(
-    conn: sqlite3.Connection, *, inspection_id: str, label: str, operator: str, caller: str, time: str
-) -> bool:
-    """Keeps every review in `reviews`; the inspection row holds the latest. False when there is no such row."""
-    conn.execute("BEGIN IMMEDIATE")
-    try:
-        cur = conn.execute(
-            "UPDATE inspections SET review_label = ?, review_operator = ?, review_time = ? WHERE id = ?",
-            (label, operator, time, inspection_id),
-        )
-        if cur.rowcount:
-            conn.execute(
-                "INSERT INTO reviews (inspection_id, time, label, operator, caller) VALUES (?, ?, ?, ?, ?)",
-                (inspection_id, time, label, operator, caller),
-            )
-        conn.execute("COMMIT")
-    except BaseException:
-        conn.execute("ROLLBACK")
-        raise
+def insert_review(conn: sqlite3.Connection, *, review: Review) -> bool:
+    """Adds a review to the inspection's history (one statement: atomic). False when there is no such inspection."""
+    sql = (
+        f"INSERT INTO reviews ({', '.join(_REVIEW_COLUMNS)}) SELECT {', '.join('?' * len(_REVIEW_COLUMNS))} "
+        "WHERE EXISTS (SELECT 1 FROM inspections WHERE id = ?)"
+    )
+    cur = conn.execute(sql, (*(getattr(review, c) for c in _REVIEW_COLUMNS), review.inspection_id))
     return bool(cur.rowcount)
+
+
+def select_reviews(conn: sqlite3.Connection, *, inspection_id: str) -> list[Review]:
+    """Oldest first: the last one is the inspection's current label."""
+    rows = conn.execute(
+        f"SELECT {', '.join(_REVIEW_COLUMNS)} FROM reviews WHERE inspection_id = ? ORDER BY seq", (inspection_id,)
+    )
+    return [Review(**{c: r[c] for c in _REVIEW_COLUMNS}) for r in rows]
 
 
 def insert_model_event(conn: sqlite3.Connection, *, event: ModelEvent, serving: Serving | None = None) -> None:
@@ -335,17 +336,20 @@ class SqliteStore:
         return select_inspection(self._conn(), inspection_id=inspection_id)
 
     def list_inspections(
-        self,
-        *,
-        verdict: str | None = None,
-        since: str | None = None,
-        until: str | None = None,
-        reviewed: bool | None = None,
-        limit: int = 100,
+        self, *, where: InspectionFilter = EVERY, limit: int = 100, offset: int = 0
     ) -> list[InspectionRecord]:
-        return select_inspections(
-            self._conn(), verdict=verdict, since=since, until=until, reviewed=reviewed, limit=limit
-        )
+        return select_inspections(self._conn(), where=where, limit=limit, offset=offset)
+
+    def find_inspections(
+        self, *, where: InspectionFilter, limit: int, offset: int
+    ) -> tuple[list[InspectionRecord], int]:
+        """A page (newest first) and the number of all matching rows, both from one snapshot of the store."""
+        conn = self._conn()
+        conn.execute("BEGIN")  # a read transaction: a row committed between the two reads is in neither
+        try:
+            return select_inspections(conn, where=where, limit=limit, offset=offset), count_selected(conn, where=where)
+        finally:
+            conn.execute("COMMIT")
 
     def iter_inspections(self, *, since: str | None, until: str | None, page: int = 1000) -> Iterator[InspectionRecord]:
         """Oldest first, a page at a time, each page on the calling thread's own connection (a streamed response
@@ -358,13 +362,25 @@ class SqliteStore:
                 return
             after = rows[-1][0]
 
-    def add_review(self, *, inspection_id: str, label: str, operator: str, caller: str) -> InspectionRecord | None:
+    def add_review(
+        self,
+        *,
+        inspection_id: str,
+        label: str,
+        operator: str,
+        caller: str,
+        defect_class: str | None = None,
+        note: str | None = None,
+    ) -> InspectionRecord | None:
+        """Adds to the history; the inspection as it reads now (this review its label), or None if there is none."""
         conn = self._conn()
-        if not insert_review(
-            conn, inspection_id=inspection_id, label=label, operator=operator, caller=caller, time=utc_now()
-        ):
+        review = Review(inspection_id, utc_now(), label, operator, caller, defect_class, note)
+        if not insert_review(conn, review=review):
             return None
         return select_inspection(conn, inspection_id=inspection_id)
+
+    def reviews(self, *, inspection_id: str) -> list[Review]:
+        return select_reviews(self._conn(), inspection_id=inspection_id)
 
     def add_model_event(self, *, event: ModelEvent, serving: Serving | None = None) -> None:
         insert_model_event(self._conn(), event=event, serving=serving)

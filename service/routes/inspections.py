@@ -5,6 +5,7 @@ from __future__ import annotations
 import time
 from typing import Annotated, Literal
 
+import numpy as np
 from fastapi import APIRouter, BackgroundTasks, Depends, File, Form, Query, Request, Response, UploadFile
 from fastapi.exceptions import RequestValidationError
 from pydantic import StringConstraints
@@ -12,7 +13,7 @@ from pydantic import StringConstraints
 from service import problems
 from service.deps import CurrentModel, ServiceState, State, StationCaller, Window
 from service.overlay import overlay_png
-from service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due
+from service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due, review_out
 from service.problems import Problem
 from service.schemas import (
     NO_CONTROL,
@@ -21,9 +22,10 @@ from service.schemas import (
     InspectionList,
     InspectionOut,
     ReviewIn,
+    ReviewList,
     Verdict,
 )
-from service.store import InspectionRecord
+from service.store import InspectionFilter, InspectionRecord
 from training.data import decode_image
 from training.errors import KnowngoodError
 
@@ -33,6 +35,8 @@ PartIds = Annotated[
     list[Annotated[str, StringConstraints(max_length=200, pattern=NO_CONTROL)]] | None,
     Form(description="none, or one per image in order"),
 ]
+QueryText = Annotated[str | None, Query(max_length=200, pattern=NO_CONTROL, description="exact match")]
+MAX_OFFSET = 2**53  # far beyond any store, and still an integer SQLite and JSON both hold exactly
 Inline = Annotated[Literal["inline"] | None, Query(description="'inline' adds the overlay PNG as base64")]
 IMAGE_HELP = "PNG, JPEG, BMP or TIFF (8 or 16 bit; gray, RGB or CMYK); checked by decoding, not by name"
 
@@ -129,15 +133,21 @@ def list_inspections(
     state: State,
     caller: StationCaller,
     window: Window,
+    station: QueryText = None,
+    part_id: QueryText = None,
     verdict: Verdict | None = None,
-    reviewed: Annotated[bool | None, Query(description="false = awaiting review")] = None,
-    limit: Annotated[int, Query(ge=1, le=1000)] = 50,
+    reviewed: Annotated[bool | None, Query(description="true = has a review; false = awaiting review")] = None,
+    limit: Annotated[int, Query(ge=1, le=1000, description="rows on this page")] = 100,
+    offset: Annotated[int, Query(ge=0, le=MAX_OFFSET, description="matching rows skipped, newest first")] = 0,
 ) -> InspectionList:
-    """Recent inspections, newest first; verdict=flag&reviewed=false is the review queue."""
-    records = state.store.list_inspections(
-        verdict=verdict, since=window.since, until=window.until, reviewed=reviewed, limit=limit
+    """Inspections matching every filter given, newest first, paged; verdict=flag&reviewed=false is the review queue."""
+    where = InspectionFilter(
+        verdict=verdict, station=station, part_id=part_id, reviewed=reviewed, since=window.since, until=window.until
     )
-    return InspectionList(items=[inspection_out(r) for r in records], count=len(records))
+    records, total = state.store.find_inspections(where=where, limit=limit, offset=offset)
+    return InspectionList(
+        items=[inspection_out(r) for r in records], count=len(records), total=total, limit=limit, offset=offset
+    )
 
 
 @router.get("/{inspection_id}", response_model=InspectionOut, responses=problems.responses(401, 404, 422))
@@ -146,23 +156,27 @@ def get_inspection(state: State, caller: StationCaller, inspection_id: str) -> I
     return inspection_out(_find(state, inspection_id))
 
 
-@router.get(
-    "/{inspection_id}/heatmap.png",
-    response_class=Response,
-    response_model=None,
-    responses={
-        200: {"content": {"image/png": {}}, "description": "the overlay PNG"},
-        **problems.responses(401, 404, 422),
-    },
-)
+PNG_RESPONSES = {200: {"content": {"image/png": {}}, "description": "a PNG image"}, **problems.responses(401, 404, 422)}
+
+
+@router.get("/{inspection_id}/heatmap.png", response_class=Response, response_model=None, responses=PNG_RESPONSES)
 def get_heatmap(state: State, caller: StationCaller, inspection_id: str) -> Response:
     """The heatmap overlay PNG at the image's own resolution (long side at most 2048 px)."""
-    record = _find(state, inspection_id)
+    return _picture(state, _find(state, inspection_id), tinted=True)
+
+
+@router.get("/{inspection_id}/image.png", response_class=Response, response_model=None, responses=PNG_RESPONSES)
+def get_image(state: State, caller: StationCaller, inspection_id: str) -> Response:
+    """The inspected image as its overlay shows it, without the tint: same size, to compare side by side."""
+    return _picture(state, _find(state, inspection_id), tinted=False)
+
+
+def _picture(state: ServiceState, record: InspectionRecord, *, tinted: bool) -> Response:
     heat = state.files.get_heatmap(record.id) if record.files_kept else None
     if heat is None:
         raise Problem(
             404,
-            f"the heatmap of inspection {record.id} is no longer kept (retention: "
+            f"the {'heatmap' if tinted else 'image'} of inspection {record.id} is no longer kept (retention: "
             "KNOWNGOOD_RETENTION_COUNT, KNOWNGOOD_RETENTION_DAYS)",
         )
     image = heat.view
@@ -172,16 +186,30 @@ def get_heatmap(state: State, caller: StationCaller, inspection_id: str) -> Resp
             image = decode_image(original, name=record.id, max_pixels=max(state.settings.max_pixels, 1), min_side=1)
         except KnowngoodError:
             pass  # it was decoded once when scored; if it cannot be now, the model's view still shows the part
-    png = overlay_png(image, heat.heat, height=heat.height, width=heat.width, threshold=record.threshold)
+    heatmap = heat.heat if tinted else np.zeros_like(heat.heat)  # no heat, no tint: the image alone, same geometry
+    png = overlay_png(image, heatmap, height=heat.height, width=heat.width, threshold=record.threshold)
     return Response(png, media_type="image/png", headers={"Cache-Control": "private, max-age=86400"})
 
 
 @router.post("/{inspection_id}/review", response_model=InspectionOut, responses=problems.responses(401, 404, 422))
 def review_inspection(state: State, caller: StationCaller, inspection_id: str, review: ReviewIn) -> InspectionOut:
-    """Record an operator's confirmation (good or defective); the latest review is shown, all are kept."""
+    """Record an operator's confirmation (good or defective); all reviews are kept, the latest is the label."""
     record = state.store.add_review(
-        inspection_id=inspection_id, label=review.label, operator=review.operator, caller=caller.name
+        inspection_id=inspection_id,
+        label=review.label,
+        operator=review.operator,
+        caller=caller.name,
+        defect_class=review.defect_class,
+        note=review.note,
     )
     if record is None:
         raise Problem(404, f"no inspection with id {inspection_id[:64]!r}")
     return inspection_out(record)
+
+
+@router.get("/{inspection_id}/reviews", response_model=ReviewList, responses=problems.responses(401, 404, 422))
+def list_reviews(state: State, caller: StationCaller, inspection_id: str) -> ReviewList:
+    """Every review of one inspection, oldest first: who, when, the label, defect class and note."""
+    _find(state, inspection_id)
+    reviews = state.store.reviews(inspection_id=inspection_id)
+    return ReviewList(items=[review_out(r) for r in reviews], count=len(reviews))

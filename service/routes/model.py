@@ -4,16 +4,32 @@ from __future__ import annotations
 
 from typing import Annotated
 
-from fastapi import APIRouter, File, Query, UploadFile
+from fastapi import APIRouter, File, Form, Query, UploadFile
 
 from service import problems
 from service.deps import AdminCaller, CurrentModel, ServiceState, State, StationCaller
 from service.model_slot import LoadedModel, model_event, prepare
 from service.restore import keep_bundles
-from service.schemas import ModelEventList, ModelEventOut, ModelOut, ModelRef, ThresholdIn, ThresholdInfo
+from service.schemas import (
+    NO_CONTROL,
+    REASON_HELP,
+    ChangeIn,
+    ModelEventList,
+    ModelEventOut,
+    ModelOut,
+    ModelRef,
+    ThresholdIn,
+    ThresholdInfo,
+)
 from service.settings import Caller, shown_to
 
 router = APIRouter(prefix="/v1/model", tags=["model"])
+Operator = Annotated[str, Form(min_length=1, max_length=100, pattern=NO_CONTROL, description="who makes the change")]
+Reason = Annotated[str, Form(min_length=1, max_length=500, pattern=NO_CONTROL, description=REASON_HELP)]
+
+
+def ref(m: LoadedModel) -> ModelRef:
+    return ModelRef(id=m.detector.model_id, revision=m.detector.revision, sha256=m.detector.sha256)
 
 
 def model_out(m: LoadedModel, previous: LoadedModel | None, viewer: Caller) -> ModelOut:
@@ -21,6 +37,7 @@ def model_out(m: LoadedModel, previous: LoadedModel | None, viewer: Caller) -> M
     t = shown_to(viewer, det.manifest.get("threshold", {}))
     return ModelOut(
         id=det.model_id,
+        revision=det.revision,
         sha256=det.sha256,
         size=det.cfg.size,
         channels=det.cfg.channels,
@@ -31,7 +48,7 @@ def model_out(m: LoadedModel, previous: LoadedModel | None, viewer: Caller) -> M
         loaded_at=m.loaded_at,
         source=m.source,
         manifest={**det.manifest, "threshold": t},
-        previous=ModelRef(id=previous.detector.model_id, sha256=previous.detector.sha256) if previous else None,
+        previous=ref(previous) if previous else None,
     )
 
 
@@ -57,14 +74,14 @@ async def get_model(state: State, caller: StationCaller, model: CurrentModel) ->
 def list_model_events(
     state: State, caller: StationCaller, limit: Annotated[int, Query(ge=1, le=1000)] = 50
 ) -> ModelEventList:
-    """Model loads, swaps, rollbacks and threshold changes, newest first, with who and when."""
+    """Model loads, swaps, rollbacks and threshold changes, newest first, with who, when, why and the revision."""
     events = state.store.model_events(limit=limit)
     return ModelEventList(
         items=[
             ModelEventOut(
                 time=e.time,
                 kind=e.kind,
-                model=ModelRef(id=e.model_id, sha256=e.model_sha256),
+                model=ModelRef(id=e.model_id, revision=e.revision, sha256=e.model_sha256),
                 threshold=e.threshold,
                 previous_threshold=e.previous_threshold,
                 caller=shown_to(caller, e.caller),
@@ -81,6 +98,8 @@ def put_model(
     state: State,
     caller: AdminCaller,
     bundle: Annotated[UploadFile, File(description="a model bundle written by `knowngood train`")],
+    operator: Operator,
+    reason: Reason,
 ) -> ModelOut:
     """Replace the model: the bundle is validated completely, then swapped in atomically; the old one is kept."""
     data = bundle.file.read()
@@ -89,20 +108,22 @@ def put_model(
     )
     state.files.put_bundle(new.detector.sha256, data)  # before the swap: a restart can serve it again
     # requests that already hold the old model finish on it
-    out = state.slot.install(new, record=_log(state, "swap", caller), respond=_respond(caller))
+    record = _log(state, "swap", caller, operator=operator, reason=reason)
+    out = state.slot.install(new, record=record, respond=_respond(caller))
     keep_bundles(state.files, state.slot, keep=state.settings.keep_bundles)
     return out
 
 
-@router.post("/rollback", response_model=ModelOut, responses=problems.responses(401, 403, 409))
-def rollback_model(state: State, caller: AdminCaller) -> ModelOut:
-    """Swap back to the previous model (a second rollback undoes the first)."""
-    return state.slot.rollback(record=_log(state, "rollback", caller), respond=_respond(caller))
+@router.post("/rollback", response_model=ModelOut, responses=problems.responses(401, 403, 409, 422))
+def rollback_model(state: State, caller: AdminCaller, change: ChangeIn) -> ModelOut:
+    """Swap back to the previous model (a second rollback undoes the first), recorded with who and why."""
+    record = _log(state, "rollback", caller, operator=change.operator, reason=change.reason)
+    return state.slot.rollback(record=record, respond=_respond(caller))
 
 
 @router.put("/threshold", response_model=ModelOut, responses=problems.responses(401, 403, 422, 503))
 def put_threshold(state: State, caller: AdminCaller, change: ThresholdIn) -> ModelOut:
-    """Set the current model's threshold (flag when score > threshold), recorded with who, when and why."""
+    """Set the current model's threshold (flag when score > threshold): a new revision, recorded with who and why."""
     set_by = f"{change.operator} ({caller.name})"
 
     def record(old: LoadedModel, new: LoadedModel, serving) -> None:

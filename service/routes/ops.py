@@ -9,11 +9,12 @@ from dataclasses import fields
 from pathlib import Path
 
 from fastapi import APIRouter
-from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, PlainTextResponse, StreamingResponse
+from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, PlainTextResponse, Response, StreamingResponse
 
 from service import problems
 from service.deps import CurrentModel, ServiceState, State, StationCaller, Window
 from service.metrics import CONTENT_TYPE
+from service.overlay import legend_png
 from service.schemas import DriftOut, HealthOut, ReadyOut
 from service.settings import Caller, shown_to
 from service.store import InspectionRecord
@@ -53,13 +54,17 @@ async def readyz(state: State) -> JSONResponse:
         **problems.responses(401),
     },
 )
-async def metrics(state: State, caller: StationCaller) -> PlainTextResponse:
-    """Prometheus metrics: requests, latency, verdicts, model id, score quantiles (station token)."""
+def metrics(state: State, caller: StationCaller) -> PlainTextResponse:
+    """Prometheus metrics: requests, latency, verdicts, model and revision, scores, drift state (station token)."""
     m = state.slot.current
+    s = state.settings
     text = state.metrics.render(
         model_id=m.detector.model_id if m else None,
         model_sha256=m.detector.sha256 if m else None,
+        model_revision=m.detector.revision if m else None,
         threshold=m.detector.threshold if m else None,
+        # plain `def`: the assessment (a Fréchet distance) runs in the thread pool, not on the event loop
+        drift=m.drift.assess(min_images=s.drift_min_images, sigmas=s.drift_sigmas) if m else None,
     )
     return PlainTextResponse(text, media_type=CONTENT_TYPE)
 
@@ -127,3 +132,14 @@ def export_csv(state: State, caller: StationCaller, window: Window) -> Streaming
 async def operator_page() -> FileResponse:
     """The operator page: inspect, watch, review flagged parts, see drift (the token is entered on the page)."""
     return FileResponse(STATIC / "index.html", media_type="text/html", headers=PAGE_HEADERS)
+
+
+@router.get(
+    "/heatmap-legend.png",
+    response_class=Response,
+    response_model=None,
+    responses={200: {"content": {"image/png": {}}, "description": "a (1, 256) PNG, low anomaly left"}},
+)
+async def heatmap_legend() -> Response:
+    """The overlays' colour scale for the operator page, low to high anomaly, on a mid-grey part (no token needed)."""
+    return Response(legend_png(), media_type="image/png", headers={"Cache-Control": "public, max-age=86400"})

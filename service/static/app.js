@@ -1,10 +1,19 @@
 // Operator page: plain JavaScript against REST v1. The token lives in sessionStorage (this tab only).
+// Fields the service may not send (an older server, a retention-deleted heatmap) are shown as "–", never guessed.
 "use strict";
 
 const $ = (id) => document.getElementById(id);
 const store = window.sessionStorage;
+const DASH = "–";
+const DRIFT_TEXT = {
+  ok: "production images look like the training images",
+  drifting: "production images no longer look like the training images: check light, camera and material lot",
+  not_enough_images: "not enough production images yet to judge",
+  no_reference: "this model carries no drift reference",
+};
 let current = null; // the inspection shown in the result panel
-let overlayUrl = null;
+let urls = { original: null, overlay: null }; // object URLs of the shown images, revoked when replaced
+let offset = 0; // paging of the recent list
 let timer = null;
 
 function token() { return store.getItem("knowngood.token") || ""; }
@@ -30,12 +39,22 @@ async function api(path, options = {}) {
   return type.includes("json") ? response.json() : response.blob();
 }
 
-function fmt(x) { return x === null || x === undefined ? "—" : Number(x).toFixed(3); }
-function when(t) { return new Date(t).toLocaleString(); }
+function missing(x) { return x === null || x === undefined || x === ""; }
+function dash(x) { return missing(x) ? DASH : String(x); }
+function fmt(x) { return missing(x) || !Number.isFinite(Number(x)) ? DASH : Number(x).toFixed(3); }
+function when(t) { return missing(t) ? DASH : new Date(t).toLocaleString(); }
+
+// the model that made a verdict: `model: {id, revision, sha256}`, or `model_id` / `model_revision` beside it
+function modelOf(insp) {
+  const m = insp && typeof insp.model === "object" && insp.model !== null ? insp.model : {};
+  const id = m.id ?? (typeof insp.model === "string" ? insp.model : insp.model_id);
+  return { id: dash(id), revision: dash(m.revision ?? insp.model_revision) };
+}
+function modelLabel(insp) { const m = modelOf(insp); return m.id + " rev " + m.revision; }
 
 function cell(row, text) {
   const td = document.createElement("td");
-  td.textContent = text === null || text === undefined ? "" : String(text);
+  td.textContent = dash(text);
   row.appendChild(td);
   return td;
 }
@@ -66,62 +85,144 @@ function showApp(on) {
   $("login").hidden = on;
   $("app").hidden = !on;
   $("sign-out").hidden = !on;
+  $("drift-banner").hidden = !on;
   if (timer) { clearInterval(timer); timer = null; }
   if (on) { timer = setInterval(() => { if ($("watch").checked) refresh(); }, 5000); }
 }
 
 async function refreshModel() {
   const m = await api("/v1/model");
-  $("model-info").textContent = "model " + m.id + " · threshold " + fmt(m.threshold.value) + " · " + m.runtime;
+  const threshold = m.threshold && typeof m.threshold === "object" ? m.threshold.value : m.threshold;
+  $("model-info").textContent = "model " + dash(m.id) + " rev " + dash(m.revision) + " · threshold " + fmt(threshold)
+    + " · " + dash(m.runtime);
 }
+
+// ---- inspect -----------------------------------------------------------------------------------------------
 
 async function inspect(event) {
   event.preventDefault();
   const file = $("file").files[0];
   if (!file) { say("Choose an image first."); return; }
+  clearResult(); // nothing of the previous part may stay on screen beside this file's name
+  say("");
   const form = new FormData();
   form.append("image", file);
+  const station = $("station").value.trim();
   if ($("part-id").value.trim()) form.append("part_id", $("part-id").value.trim());
-  if ($("station").value.trim()) form.append("station", $("station").value.trim());
+  if (station) form.append("station", station);
   $("inspect-btn").disabled = true;
   try {
     const result = await api("/v1/inspections", { method: "POST", body: form });
-    say("");
-    await show(result);
+    // the next part must not inherit this one's id or file; the station stays, and says so
+    $("part-id").value = "";
+    $("file").value = "";
+    showStationKept(station);
+    await show(result, file);
     await refresh();
   } catch (error) {
-    say("Not inspected: " + error.message);
+    clearResult();
+    say("Not inspected: " + file.name + ": " + error.message);
   } finally {
     $("inspect-btn").disabled = false;
   }
 }
 
-async function show(insp) {
+// the station stays in its field for the next part; the tag says so until the operator changes it
+function showStationKept(station) {
+  $("station-kept").hidden = !station;
+  $("station").classList.toggle("kept", Boolean(station));
+}
+
+function setImage(which, blob) {
+  if (urls[which]) URL.revokeObjectURL(urls[which]);
+  urls[which] = blob ? URL.createObjectURL(blob) : null;
+  if (urls[which]) $(which).src = urls[which];
+  else $(which).removeAttribute("src");
+}
+
+function clearResult() {
+  current = null;
+  $("result").hidden = true;
+  for (const id of ["result-id", "verdict", "score", "threshold", "result-model", "result-revision", "result-meta",
+    "review-state", "legend-mid", "legend-high"]) $(id).textContent = "";
+  $("verdict").className = "verdict";
+  $("review-history").replaceChildren();
+  setImage("original", null);
+  setImage("overlay", null);
+}
+
+// localFile: the file just uploaded, shown when the service keeps no picture of the original
+async function show(insp, localFile = null) {
   current = insp;
   $("result").hidden = false;
   $("result-id").textContent = insp.id;
   const verdict = $("verdict");
-  verdict.textContent = insp.verdict;
-  verdict.className = "verdict " + insp.verdict;
+  verdict.textContent = dash(insp.verdict);
+  verdict.className = "verdict " + (insp.verdict || "");
   $("score").textContent = fmt(insp.score);
   $("threshold").textContent = fmt(insp.threshold);
-  // the bar spans 0 .. twice the threshold (or a little past the score); the mark is the threshold
-  const span = Math.max(2 * insp.threshold, 1.1 * insp.score, 1e-6);
-  $("score-fill").className = insp.verdict;
-  $("score-fill").style.width = (100 * Math.min(insp.score / span, 1)) + "%";
-  $("threshold-mark").style.left = (100 * insp.threshold / span) + "%";
+  const model = modelOf(insp);
+  $("result-model").textContent = model.id;
+  $("result-revision").textContent = model.revision;
+  showBar(insp);
+  showLegend(insp.threshold);
+  const size = insp.image ? insp.image.width + " × " + insp.image.height + " px" : null;
   $("result-meta").textContent = [insp.part_id && "part " + insp.part_id, insp.station && "station " + insp.station,
-    when(insp.time), insp.image.width + " × " + insp.image.height + " px"].filter(Boolean).join(" · ");
+    when(insp.time), size].filter(Boolean).join(" · ");
   $("review-state").textContent = insp.review
     ? "Reviewed: " + insp.review.label + " by " + insp.review.operator + " (" + when(insp.review.time) + ")"
     : "Not reviewed yet.";
-  if (overlayUrl) { URL.revokeObjectURL(overlayUrl); overlayUrl = null; }
-  $("overlay").removeAttribute("src");
-  if (insp.heatmap_url) {
-    try {
-      overlayUrl = URL.createObjectURL(await api(insp.heatmap_url));
-      $("overlay").src = overlayUrl;
-    } catch (error) { say("Heatmap: " + error.message); }
+  await Promise.all([showImages(insp, localFile), showReviews(insp)]);
+}
+
+// the bar spans 0 .. twice the threshold (or a little past the score); the mark is the threshold
+function showBar(insp) {
+  const score = Number(insp.score), threshold = Number(insp.threshold);
+  const span = Math.max(2 * threshold, 1.1 * score, 1e-6) || 1;
+  $("score-fill").className = insp.verdict || "";
+  $("score-fill").style.width = (100 * Math.min(score / span, 1) || 0) + "%";
+  $("threshold-mark").style.left = (100 * threshold / span || 0) + "%";
+}
+
+// the overlay's colour scale (service/overlay.py vmax_for): full tint at twice the threshold; with a threshold of 0,
+// at the map's own maximum
+function showLegend(threshold) {
+  const t = Number(threshold);
+  const scaled = Number.isFinite(t) && t > 0;
+  $("legend-mid").textContent = scaled ? "threshold " + fmt(t) : "";
+  $("legend-high").textContent = scaled ? fmt(2 * t) + " and above" : "this image's highest heat";
+}
+
+async function showImages(insp, localFile) {
+  const id = insp.id;
+  const [overlay, original] = await Promise.allSettled([
+    insp.heatmap_url ? api(insp.heatmap_url) : Promise.reject(new Error("the heatmap is no longer kept")),
+    api("/v1/inspections/" + encodeURIComponent(id) + "/image.png"),
+  ]);
+  if (!current || current.id !== id) return; // another inspection was opened meanwhile
+  setImage("overlay", overlay.status === "fulfilled" ? overlay.value : null);
+  setImage("original", original.status === "fulfilled" ? original.value : localFile);
+  if (overlay.status === "rejected") say("Heatmap: " + overlay.reason.message);
+}
+
+async function showReviews(insp) {
+  const list = $("review-history");
+  list.replaceChildren();
+  if (typeof insp.review_count === "number" && insp.review_count < 2) return; // the latest review says it all
+  let reviews;
+  try {
+    reviews = await api("/v1/inspections/" + encodeURIComponent(insp.id) + "/reviews");
+  } catch (error) {
+    return; // an older service has no review history: the latest review above is all there is
+  }
+  if (!current || current.id !== insp.id) return;
+  const items = Array.isArray(reviews) ? reviews : reviews.items || [];
+  if (items.length < 2) return; // one review is already shown as the latest
+  for (const r of items) {
+    const li = document.createElement("li");
+    li.textContent = [dash(r.label), r.defect_class && "(" + r.defect_class + ")", "by " + dash(r.operator),
+      when(r.time), r.note && "— " + r.note].filter(Boolean).join(" ");
+    list.appendChild(li);
   }
 }
 
@@ -130,7 +231,7 @@ async function review(label) {
   const operator = store.getItem("knowngood.operator") || $("operator").value.trim();
   if (!operator) { say("Enter your name at sign-in so the review records who confirmed it."); return; }
   try {
-    const updated = await api("/v1/inspections/" + current.id + "/review", {
+    const updated = await api("/v1/inspections/" + encodeURIComponent(current.id) + "/review", {
       method: "POST", headers: { "Content-Type": "application/json" },
       body: JSON.stringify({ label, operator }),
     });
@@ -141,6 +242,19 @@ async function review(label) {
     say("Review not recorded: " + error.message);
   }
 }
+
+// ---- enlarged view -----------------------------------------------------------------------------------------
+
+function zoom(which) {
+  if (!$(which).getAttribute("src")) return;
+  $("zoom-image").src = $(which).src;
+  $("zoom-title").textContent = which === "original" ? "Original image" : "Heatmap overlay";
+  $("zoom-original").disabled = which === "original";
+  $("zoom-overlay").disabled = which === "overlay";
+  if (!$("zoom").open) $("zoom").showModal(); // a modal dialog closes on Escape by itself
+}
+
+// ---- lists -------------------------------------------------------------------------------------------------
 
 function fillTable(body, items, columns) {
   body.replaceChildren();
@@ -153,26 +267,89 @@ function fillTable(body, items, columns) {
   }
 }
 
-async function refresh() {
-  try {
-    const [queue, recent, drift] = await Promise.all([
-      api("/v1/inspections?verdict=flag&reviewed=false&limit=100"),
-      api("/v1/inspections?limit=20"),
-      api("/v1/drift"),
-    ]);
-    fillTable($("queue-rows"), queue.items, [(i) => when(i.time), (i) => i.part_id, (i) => i.station,
-      (i) => fmt(i.score), (i) => fmt(i.threshold)]);
-    $("queue-count").textContent = String(queue.count);
-    $("queue-empty").hidden = queue.count > 0;
-    fillTable($("recent-rows"), recent.items, [(i) => when(i.time), (i) => i.part_id, (i) => i.station,
-      (i) => i.verdict, (i) => fmt(i.score), (i) => (i.review ? i.review.label : "")]);
-    $("drift-status").textContent = drift.status.replace(/_/g, " ");
-    $("drift-detail").textContent = drift.detail;
-    await refreshModel();
-  } catch (error) {
-    say(error.status === 401 ? "Signed out: " + error.message : "Refresh failed: " + error.message);
-    if (error.status === 401) signOut();
+function isoFrom(localValue) { return localValue ? new Date(localValue).toISOString() : ""; }
+
+function pageSize() { return Number($("f-size").value) || 20; }
+
+function recentQuery() {
+  const q = new URLSearchParams();
+  const add = (name, value) => { if (value) q.set(name, value); };
+  add("station", $("f-station").value.trim());
+  add("part_id", $("f-part").value.trim());
+  add("verdict", $("f-verdict").value);
+  add("reviewed", $("f-reviewed").value);
+  add("since", isoFrom($("f-since").value));
+  add("until", isoFrom($("f-until").value));
+  q.set("limit", String(pageSize()));
+  q.set("offset", String(offset));
+  return "/v1/inspections?" + q.toString();
+}
+
+function showPage(items, total) {
+  const known = typeof total === "number";
+  $("recent-empty").hidden = items.length > 0;
+  $("page-info").textContent = (items.length ? "showing " + (offset + 1) + "–" + (offset + items.length) : "showing 0")
+    + " of " + (known ? total : DASH);
+  $("page-prev").disabled = offset === 0;
+  $("page-next").disabled = known ? offset + items.length >= total : items.length < pageSize();
+}
+
+function showDrift(drift) {
+  const status = drift && drift.status ? drift.status : "unknown";
+  $("drift-banner").className = "drift-banner " + status;
+  $("drift-badge").className = "drift-badge " + status;
+  $("drift-badge").textContent = "drift: " + (drift && drift.status ? drift.status.replace(/_/g, " ") : DASH);
+  let text = DRIFT_TEXT[status] || "drift state unavailable";
+  if (status === "not_enough_images" && !missing(drift.images) && !missing(drift.needed)) {
+    text += " (" + drift.images + " of " + drift.needed + ")";
   }
+  $("drift-text").textContent = text;
+  $("drift-detail").textContent = drift && drift.detail ? drift.detail : "";
+}
+
+async function refresh() {
+  const [queue, recent, drift] = await Promise.allSettled([
+    api("/v1/inspections?verdict=flag&reviewed=false&limit=100"),
+    api(recentQuery()),
+    api("/v1/drift"),
+  ]);
+  const failed = [queue, recent, drift].find((r) => r.status === "rejected");
+  if (failed && failed.reason.status === 401) {
+    say("Signed out: " + failed.reason.message);
+    signOut();
+    return;
+  }
+  if (queue.status === "fulfilled") {
+    const q = queue.value, count = q.total ?? q.count ?? q.items.length;
+    fillTable($("queue-rows"), q.items, [(i) => when(i.time), (i) => i.part_id, (i) => i.station,
+      (i) => fmt(i.score), (i) => fmt(i.threshold), modelLabel]);
+    $("queue-count").textContent = String(count);
+    $("queue-empty").hidden = count > 0;
+  }
+  if (recent.status === "fulfilled") {
+    fillTable($("recent-rows"), recent.value.items, [(i) => when(i.time), (i) => i.part_id, (i) => i.station,
+      (i) => i.verdict, (i) => fmt(i.score), modelLabel, (i) => (i.review ? i.review.label : null)]);
+    showPage(recent.value.items, recent.value.total);
+  }
+  showDrift(drift.status === "fulfilled" ? drift.value : null);
+  if (failed) say("Refresh failed: " + failed.reason.message);
+  try { await refreshModel(); } catch (error) { /* the header keeps the last model it showed */ }
+}
+
+function applyFilters(event) {
+  if (event) event.preventDefault();
+  offset = 0;
+  refresh();
+}
+
+function clearFilters() {
+  for (const id of ["f-station", "f-part", "f-verdict", "f-reviewed", "f-since", "f-until"]) $(id).value = "";
+  applyFilters();
+}
+
+function turnPage(step) {
+  offset = Math.max(0, offset + step * pageSize());
+  refresh();
 }
 
 document.addEventListener("DOMContentLoaded", () => {
@@ -181,6 +358,18 @@ document.addEventListener("DOMContentLoaded", () => {
   $("sign-out").addEventListener("click", signOut);
   $("review-good").addEventListener("click", () => review("good"));
   $("review-defective").addEventListener("click", () => review("defective"));
+  $("station").addEventListener("input", () => showStationKept(""));
+  $("original").addEventListener("click", () => zoom("original"));
+  $("overlay").addEventListener("click", () => zoom("overlay"));
+  $("zoom-original").addEventListener("click", () => zoom("original"));
+  $("zoom-overlay").addEventListener("click", () => zoom("overlay"));
+  $("zoom-close").addEventListener("click", () => $("zoom").close());
+  $("zoom").addEventListener("click", (event) => { if (event.target === $("zoom")) $("zoom").close(); });
+  $("filter-form").addEventListener("submit", applyFilters);
+  $("f-clear").addEventListener("click", clearFilters);
+  $("f-size").addEventListener("change", () => applyFilters());
+  $("page-prev").addEventListener("click", () => turnPage(-1));
+  $("page-next").addEventListener("click", () => turnPage(1));
   $("operator").value = store.getItem("knowngood.operator") || "";
   if (token()) {
     refreshModel().then(() => { showApp(true); return refresh(); }).catch(() => signOut());

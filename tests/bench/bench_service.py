@@ -32,6 +32,7 @@ from PIL import Image
 
 STATION = "bench-station-token-0001"
 ADMIN = "bench-admin-token-00001"
+SWAP = {"operator": "bench", "reason": "model swap under load"}  # a swap says who and why
 
 
 def _free_port() -> int:
@@ -140,7 +141,7 @@ def _swap(url: str, data: bytes, at: float, result: dict) -> None:
     time.sleep(max(0.0, at - time.perf_counter()))
     t0 = time.perf_counter()
     with httpx.Client(base_url=url, headers={"Authorization": f"Bearer {ADMIN}"}, timeout=120) as http:
-        r = http.put("/v1/model", files={"bundle": ("model.kgm", data)})
+        r = http.put("/v1/model", files={"bundle": ("model.kgm", data)}, data=SWAP)
     result.update(status=r.status_code, ms=round((time.perf_counter() - t0) * 1000, 1))
 
 

@@ -20,6 +20,7 @@ STATION = "station-token-0001"
 ADMIN = "admin-token-000001"
 STATION_AUTH = {"Authorization": f"Bearer {STATION}"}
 ADMIN_AUTH = {"Authorization": f"Bearer {ADMIN}"}
+CHANGE = {"operator": "Dana", "reason": "a test of the model routes"}  # swaps and rollbacks say who and why
 OUTPUT = Path(__file__).resolve().parent / "output"  # screenshots and logs the lead can find (git-ignored)
 
 

@@ -13,15 +13,18 @@ from service import pipeline
 from service.store import (
     SCHEMA_VERSION,
     AuditStore,
+    InspectionFilter,
     InspectionRecord,
     ModelEvent,
     SqliteStore,
     connect,
+    count_selected,
     create_schema,
     insert_inspections,
     select_inspections,
     utc_now,
 )
+from service.store_schema import MIGRATED_CALLER
 
 RECORD = InspectionRecord(
     id="0" * 32,
@@ -33,6 +36,7 @@ RECORD = InspectionRecord(
     image_width=10,
     image_height=20,
     model_id="m",
+    model_revision="0123abcd",
     model_sha256="b" * 64,
     score=1.5,
     threshold=1.0,
@@ -87,22 +91,106 @@ def test_verdict_is_constrained(store):
 def test_data_functions_take_the_connection(tmp_path):
     conn = connect(tmp_path / "f.db")
     create_schema(conn)
-    insert_inspections(conn, records=[_rec(1), _rec(2, verdict="pass")])
-    assert [r.id for r in select_inspections(conn, verdict="pass")] == [_rec(2).id]
-    assert [r.id for r in select_inspections(conn, since=_rec(2).time)] == [_rec(2).id]
-    assert [r.id for r in select_inspections(conn, until=_rec(2).time)] == [_rec(1).id]
+    insert_inspections(conn, records=[_rec(1), _rec(2, verdict="pass"), _rec(3, station="t", part_id="q")])
+    ids = [_rec(i).id for i in range(4)]
+    assert [r.id for r in select_inspections(conn, where=InspectionFilter(verdict="pass"))] == [ids[2]]
+    assert [r.id for r in select_inspections(conn, where=InspectionFilter(since=_rec(2).time))] == [ids[3], ids[2]]
+    assert [r.id for r in select_inspections(conn, where=InspectionFilter(until=_rec(2).time))] == [ids[1]]
+    assert [r.id for r in select_inspections(conn, where=InspectionFilter(station="s"))] == [ids[2], ids[1]]
+    assert [r.id for r in select_inspections(conn, where=InspectionFilter(part_id="q"))] == [ids[3]]
+    assert [r.id for r in select_inspections(conn, limit=1, offset=1)] == [ids[2]]
+    assert count_selected(conn, where=InspectionFilter(station="s", verdict="flag")) == 1
 
 
-def test_reviews_keep_history_and_the_row_holds_the_latest(store):
-    store.add_inspections(records=[_rec(1)])
+def test_reviews_keep_history_and_the_latest_is_the_label(store):
+    store.add_inspections(records=[_rec(1), _rec(2)])
     assert store.add_review(inspection_id=_rec(1).id, label="good", operator="Kim", caller="c") is not None
-    latest = store.add_review(inspection_id=_rec(1).id, label="defective", operator="Lee", caller="c")
-    assert (latest.review_label, latest.review_operator) == ("defective", "Lee")
+    latest = store.add_review(
+        inspection_id=_rec(1).id, label="defective", operator="Lee", caller="c", defect_class="pore", note="n"
+    )
+    assert (latest.review_label, latest.review_operator, latest.review_defect_class) == ("defective", "Lee", "pore")
+    assert (latest.review_note, latest.review_count) == ("n", 2)
     assert store.add_review(inspection_id="f" * 32, label="good", operator="x", caller="c") is None
-    history = connect(store.path).execute("SELECT label, operator FROM reviews ORDER BY seq").fetchall()
-    assert [tuple(r) for r in history] == [("good", "Kim"), ("defective", "Lee")]
-    assert store.list_inspections(reviewed=False) == []
-    assert [r.id for r in store.list_inspections(reviewed=True)] == [_rec(1).id]
+    history = store.reviews(inspection_id=_rec(1).id)
+    assert [(r.label, r.operator, r.defect_class) for r in history] == [
+        ("good", "Kim", None),
+        ("defective", "Lee", "pore"),
+    ]
+    assert [r.id for r in store.list_inspections(where=InspectionFilter(reviewed=False))] == [_rec(2).id]
+    assert [r.id for r in store.list_inspections(where=InspectionFilter(reviewed=True))] == [_rec(1).id]
+    assert [r.review_label for r in store.iter_inspections(since=None, until=None)] == ["defective", None]
+
+
+# the audit database as schema 2 wrote it: the latest review on the inspection row, the history beside it
+SCHEMA_2 = """
+CREATE TABLE inspections (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT, id TEXT NOT NULL UNIQUE, time TEXT NOT NULL, station TEXT, part_id TEXT,
+    caller TEXT NOT NULL, image_sha256 TEXT NOT NULL, image_width INTEGER NOT NULL, image_height INTEGER NOT NULL,
+    model_id TEXT NOT NULL, model_sha256 TEXT NOT NULL, score REAL NOT NULL, threshold REAL NOT NULL,
+    verdict TEXT NOT NULL CHECK (verdict IN ('pass', 'flag')), elapsed_ms REAL NOT NULL,
+    files_kept INTEGER NOT NULL DEFAULT 1, review_label TEXT CHECK (review_label IN ('good', 'defective')),
+    review_operator TEXT, review_time TEXT
+);
+CREATE INDEX inspections_time ON inspections (time);
+CREATE INDEX inspections_queue ON inspections (verdict, review_label);
+CREATE TABLE reviews (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT, inspection_id TEXT NOT NULL REFERENCES inspections (id),
+    time TEXT NOT NULL, label TEXT NOT NULL, operator TEXT NOT NULL, caller TEXT NOT NULL
+);
+CREATE TABLE model_events (
+    seq INTEGER PRIMARY KEY AUTOINCREMENT, time TEXT NOT NULL,
+    kind TEXT NOT NULL CHECK (kind IN ('load', 'swap', 'rollback', 'threshold')), model_id TEXT NOT NULL,
+    model_sha256 TEXT NOT NULL, threshold REAL NOT NULL, previous_threshold REAL, caller TEXT NOT NULL,
+    operator TEXT, reason TEXT
+);
+CREATE TABLE serving (
+    id INTEGER PRIMARY KEY CHECK (id = 1), current_sha256 TEXT NOT NULL, previous_sha256 TEXT, startup_sha256 TEXT
+);
+PRAGMA user_version = 2;
+"""
+
+
+def test_a_schema_2_store_is_migrated_and_its_row_reviews_become_history(tmp_path):
+    path = tmp_path / "old.db"
+    with sqlite3.connect(path) as old:
+        old.executescript(SCHEMA_2)
+        columns = "id, time, caller, image_sha256, image_width, image_height, model_id, model_sha256, score, threshold"
+        row = "?, ?, 'c', 'a', 1, 1, 'm', 'b', 1.0, 2.0, 'pass', 1.0"
+        add = f"INSERT INTO inspections ({columns}, verdict, elapsed_ms, review_label, review_operator, review_time) "
+        old.execute(add + f"VALUES ({row}, 'defective', 'Kim', 't3')", ("only-on-the-row", "t1"))
+        old.execute(add + f"VALUES ({row}, 'good', 'Lee', 't5')", ("with-history", "t2"))
+        old.execute(add + f"VALUES ({row}, NULL, NULL, NULL)", ("unreviewed", "t3"))
+        for time, label, operator in (("t4", "defective", "Kim"), ("t5", "good", "Lee")):
+            old.execute(
+                "INSERT INTO reviews (inspection_id, time, label, operator, caller) VALUES (?, ?, ?, ?, 's')",
+                ("with-history", time, label, operator),
+            )
+        old.execute(
+            "INSERT INTO model_events (time, kind, model_id, model_sha256, threshold, caller) "
+            "VALUES ('t0', 'load', 'm', 'b', 2.0, 'startup')"
+        )
+    store = SqliteStore(path)
+    try:
+        assert connect(path).execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+        [moved] = store.reviews(inspection_id="only-on-the-row")  # the row's review is its first history row
+        assert (moved.label, moved.operator, moved.time, moved.caller) == ("defective", "Kim", "t3", MIGRATED_CALLER)
+        kept = store.reviews(inspection_id="with-history")  # a history already there is not doubled
+        assert [(r.label, r.operator) for r in kept] == [("defective", "Kim"), ("good", "Lee")]
+        records = {r.id: r for r in store.list_inspections()}
+        assert (records["only-on-the-row"].review_label, records["only-on-the-row"].review_count) == ("defective", 1)
+        assert (records["with-history"].review_label, records["with-history"].review_count) == ("good", 2)
+        assert records["unreviewed"].review_label is None and records["unreviewed"].model_revision is None
+        assert [r.id for r in store.list_inspections(where=InspectionFilter(reviewed=False))] == ["unreviewed"]
+        assert store.model_events()[0].revision is None
+        store.add_review(inspection_id="only-on-the-row", label="good", operator="Ana", caller="s")
+        assert store.get_inspection(inspection_id="only-on-the-row").review_label == "good"
+        columns = {r[1] for r in connect(path).execute("PRAGMA table_info(inspections)")}
+        assert "model_revision" in columns and not columns & {"review_label", "review_operator", "review_time"}
+    finally:
+        store.close()
+    reopened = SqliteStore(path)  # a second open changes nothing
+    assert len(reopened.reviews(inspection_id="only-on-the-row")) == 2
+    reopened.close()
 
 
 def test_model_events_and_latest_event(store):

@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 import tifffile
 from PIL import Image
-from service_testkit import ADMIN_AUTH, STATION_AUTH, post_image, row_count
+from service_testkit import ADMIN_AUTH, CHANGE, STATION_AUTH, post_image, row_count
 
 
 def _save(img: Image.Image, fmt: str, **kw) -> bytes:
@@ -181,7 +181,8 @@ def _rezip(data: bytes, edit) -> bytes:
 )
 def test_bad_bundle_upload_is_422_and_changes_nothing(client, tiny_bundle, good_png, label, make, words):
     before = client.get("/v1/model", headers=STATION_AUTH).json()
-    r = client.put("/v1/model", files={"bundle": ("m.kgm", make(tiny_bundle.read_bytes()))}, headers=ADMIN_AUTH)
+    bundle = {"bundle": ("m.kgm", make(tiny_bundle.read_bytes()))}
+    r = client.put("/v1/model", files=bundle, data=CHANGE, headers=ADMIN_AUTH)
     assert r.status_code == 422, r.text
     assert r.headers["content-type"] == "application/problem+json"
     assert words in r.json()["detail"]

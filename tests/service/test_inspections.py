@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import base64
+import csv
 import io
 
 import numpy as np
@@ -27,7 +28,8 @@ def test_inspection_returns_verdict_and_is_stored(client, good_png):
     assert body["heatmap_png"] is None
     assert body["elapsed_ms"] > 0
     model = client.get("/v1/model", headers=STATION_AUTH).json()
-    assert body["model"] == {"id": model["id"], "sha256": model["sha256"]}
+    assert body["model"] == {"id": model["id"], "revision": model["revision"], "sha256": model["sha256"]}
+    assert body["review"] is None and body["review_count"] == 0
     stored = client.get(f"/v1/inspections/{body['id']}", headers=STATION_AUTH)
     assert stored.status_code == 200
     assert {k: v for k, v in stored.json().items() if k != "time"} == {
@@ -145,23 +147,87 @@ def test_list_filters(client, tiny_good_images):
     assert "verdict" in r.json()["detail"] and "limit" in r.json()["detail"]
 
 
+def _review(client, inspection_id: str, **review):
+    return client.post(f"/v1/inspections/{inspection_id}/review", json=review, headers=STATION_AUTH)
+
+
 def test_review_updates_the_row_and_the_queue(client, good_png):
     client.put("/v1/model/threshold", json={"threshold": 0.0, "operator": "qa"}, headers=ADMIN_AUTH)
     body = post_image(client, good_png).json()
     queue = "/v1/inspections?verdict=flag&reviewed=false"
     assert [i["id"] for i in client.get(queue, headers=STATION_AUTH).json()["items"]] == [body["id"]]
-    r = client.post(
-        f"/v1/inspections/{body['id']}/review", json={"label": "defective", "operator": "Kim"}, headers=STATION_AUTH
-    )
+    r = _review(client, body["id"], label="defective", operator="Kim", defect_class="scratch", note="left edge")
     assert r.status_code == 200
-    assert r.json()["review"]["label"] == "defective" and r.json()["review"]["operator"] == "Kim"
-    assert client.get(queue, headers=STATION_AUTH).json()["count"] == 0
+    assert (r.json()["review"]["label"], r.json()["review"]["operator"]) == ("defective", "Kim")
+    assert (r.json()["review"]["defect_class"], r.json()["review"]["note"]) == ("scratch", "left edge")
+    assert client.get(queue, headers=STATION_AUTH).json()["total"] == 0
     reviewed = client.get("/v1/inspections?reviewed=true", headers=STATION_AUTH).json()["items"]
     assert [i["id"] for i in reviewed] == [body["id"]]
-    again = client.post(
-        f"/v1/inspections/{body['id']}/review", json={"label": "good", "operator": "Lee"}, headers=STATION_AUTH
+
+
+def test_every_review_is_kept_and_the_latest_is_the_label(client, tiny_good_images):
+    body = post_image(client, png_bytes(tiny_good_images[0])).json()
+    other = post_image(client, png_bytes(tiny_good_images[1])).json()
+    first = _review(client, body["id"], label="defective", operator="Kim", defect_class="pore")
+    second = _review(client, body["id"], label="good", operator="Lee", note="a smudge on the lens, not the part")
+    assert first.status_code == 200 and second.status_code == 200
+    assert (second.json()["review"]["label"], second.json()["review"]["operator"]) == ("good", "Lee")
+    assert second.json()["review_count"] == 2
+
+    r = client.get(f"/v1/inspections/{body['id']}/reviews", headers=STATION_AUTH)
+    assert r.status_code == 200 and r.json()["count"] == 2
+    history = [(i["label"], i["operator"], i["defect_class"], i["note"]) for i in r.json()["items"]]
+    assert history == [
+        ("defective", "Kim", "pore", None),
+        ("good", "Lee", None, "a smudge on the lens, not the part"),
+    ]  # oldest first
+    assert r.json()["items"][0]["time"] < r.json()["items"][1]["time"]
+    stored = client.get(f"/v1/inspections/{body['id']}", headers=STATION_AUTH).json()
+    assert (stored["review"]["label"], stored["review"]["operator"], stored["review_count"]) == ("good", "Lee", 2)
+    assert client.get(f"/v1/inspections/{other['id']}/reviews", headers=STATION_AUTH).json() == {
+        "items": [],
+        "count": 0,
+    }
+    assert client.get("/v1/inspections/nope/reviews", headers=STATION_AUTH).status_code == 404
+
+    rows = {
+        row["id"]: row for row in csv.DictReader(io.StringIO(client.get("/v1/export.csv", headers=STATION_AUTH).text))
+    }
+    exported = rows[body["id"]]
+    assert (exported["review_label"], exported["review_operator"], exported["review_count"]) == ("good", "Lee", "2")
+    assert exported["review_note"] == "a smudge on the lens, not the part" and exported["review_defect_class"] == ""
+    assert rows[other["id"]]["review_label"] == "" and rows[other["id"]]["review_count"] == "0"
+
+
+def test_a_threshold_change_is_a_new_revision_and_rows_keep_theirs(make_client, good_png):
+    client = make_client()
+    before = post_image(client, good_png).json()
+    r = client.put(
+        "/v1/model/threshold", json={"threshold": 0.5, "operator": "Dana", "reason": "lot 7"}, headers=ADMIN_AUTH
     )
-    assert again.json()["review"]["label"] == "good"  # the latest review is shown; both are kept in `reviews`
+    assert r.status_code == 200, r.text
+    after = post_image(client, good_png).json()
+    assert after["model"]["id"] == before["model"]["id"] and after["model"]["sha256"] == before["model"]["sha256"]
+    assert after["model"]["revision"] != before["model"]["revision"]
+    assert r.json()["revision"] == after["model"]["revision"] != before["model"]["revision"]
+    for body in (before, after):  # every row keeps the revision its verdict was given under
+        stored = client.get(f"/v1/inspections/{body['id']}", headers=STATION_AUTH).json()
+        assert stored["model"] == body["model"]
+    listed = {
+        i["id"]: i["model"]["revision"] for i in client.get("/v1/inspections", headers=STATION_AUTH).json()["items"]
+    }
+    assert listed == {before["id"]: before["model"]["revision"], after["id"]: after["model"]["revision"]}
+    rows = csv.DictReader(io.StringIO(client.get("/v1/export.csv", headers=STATION_AUTH).text))
+    assert [row["model_revision"] for row in rows] == [before["model"]["revision"], after["model"]["revision"]]
+    [change, load] = client.get("/v1/model/events", headers=STATION_AUTH).json()["items"]
+    assert (change["kind"], change["model"]["revision"]) == ("threshold", after["model"]["revision"])
+    assert (load["kind"], load["model"]["revision"]) == ("load", before["model"]["revision"])
+
+    client.__exit__(None, None, None)
+    restarted = make_client()  # the same bundle: the changed threshold, and so the same revision, is served again
+    model = restarted.get("/v1/model", headers=STATION_AUTH).json()
+    assert (model["threshold"]["value"], model["revision"]) == (0.5, after["model"]["revision"])
+    assert post_image(restarted, good_png).json()["model"] == after["model"]
 
 
 @pytest.mark.parametrize(
@@ -171,6 +237,9 @@ def test_review_updates_the_row_and_the_queue(client, good_png):
         ({"label": "good"}, "operator"),
         ({"label": "good", "operator": ""}, "operator"),
         ({"label": "good", "operator": "kim", "extra": 1}, "extra"),
+        ({"label": "good", "operator": "kim", "defect_class": "pore"}, "defect_class"),
+        ({"label": "defective", "operator": "kim", "defect_class": "../x"}, "defect_class"),
+        ({"label": "good", "operator": "kim", "note": "a\nb"}, "note"),
     ],
 )
 def test_bad_review_is_422(client, good_png, payload, field):

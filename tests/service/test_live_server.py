@@ -10,7 +10,7 @@ import threading
 import time
 
 import httpx
-from service_testkit import ADMIN_AUTH, STATION_AUTH, png_bytes, start_server
+from service_testkit import ADMIN_AUTH, CHANGE, STATION_AUTH, png_bytes, start_server
 
 
 def _stream(url: str, images: list[bytes], *, stop: threading.Event, results: list, errors: list) -> None:
@@ -111,10 +111,11 @@ def test_model_swap_during_a_stream_fails_no_request(live_server, second_bundle,
     try:
         with httpx.Client(base_url=live_server.url, headers=ADMIN_AUTH, timeout=60) as admin:
             wait_for(15)
-            swap = admin.put("/v1/model", files={"bundle": ("second.kgm", second_bundle.read_bytes())})
+            bundle = {"bundle": ("second.kgm", second_bundle.read_bytes())}
+            swap = admin.put("/v1/model", files=bundle, data=CHANGE)
             assert swap.status_code == 200, swap.text
             wait_for(len(results) + 15)
-            assert admin.post("/v1/model/rollback").status_code == 200
+            assert admin.post("/v1/model/rollback", json=CHANGE).status_code == 200
             wait_for(len(results) + 15)
     finally:
         stop.set()

@@ -8,7 +8,7 @@ import sqlite3
 
 import numpy as np
 import pytest
-from service_testkit import ADMIN_AUTH, STATION_AUTH, png_bytes, post_image, row_count
+from service_testkit import ADMIN_AUTH, CHANGE, STATION_AUTH, png_bytes, post_image, row_count
 
 from training import bundle
 
@@ -38,26 +38,59 @@ def test_get_model(client, tiny_bundle):
 
 def test_swap_keeps_the_old_model_for_rollback(client, tiny_bundle, second_bundle, good_png):
     first = _model(client)
-    r = client.put("/v1/model", files={"bundle": ("second.kgm", second_bundle.read_bytes())}, headers=ADMIN_AUTH)
+    r = client.put(
+        "/v1/model", files={"bundle": ("second.kgm", second_bundle.read_bytes())}, data=CHANGE, headers=ADMIN_AUTH
+    )
     assert r.status_code == 200, r.text
     swapped = r.json()
     assert swapped["id"] != first["id"] and swapped["threshold"]["value"] == 2.5
-    assert swapped["previous"] == {"id": first["id"], "sha256": first["sha256"]}
+    assert swapped["previous"] == {"id": first["id"], "revision": first["revision"], "sha256": first["sha256"]}
     assert post_image(client, good_png).json()["model"]["sha256"] == swapped["sha256"]
     kept = client.app.state.service.settings.data_dir / "models" / f"{swapped['sha256']}.kgm"
     assert kept.read_bytes() == second_bundle.read_bytes()
 
-    back = client.post("/v1/model/rollback", headers=ADMIN_AUTH).json()
+    back = client.post("/v1/model/rollback", json=CHANGE, headers=ADMIN_AUTH).json()
     assert back["sha256"] == first["sha256"] and back["previous"]["sha256"] == swapped["sha256"]
     assert post_image(client, good_png).json()["model"]["sha256"] == first["sha256"]
-    again = client.post("/v1/model/rollback", headers=ADMIN_AUTH).json()  # a second rollback undoes the first
+    again = client.post(
+        "/v1/model/rollback", json=CHANGE, headers=ADMIN_AUTH
+    ).json()  # a second rollback undoes the first
     assert again["sha256"] == swapped["sha256"]
     assert [e[0] for e in _events(client)] == ["load", "swap", "rollback", "rollback"]
     assert all(e[4].startswith("admin:") for e in _events(client)[1:])  # the admin token's label, not the token
+    assert all(e[5:] == ("Dana", CHANGE["reason"]) for e in _events(client)[1:])  # who and why, with each change
+
+
+@pytest.mark.parametrize("missing", ["operator", "reason"])
+def test_swap_and_rollback_need_operator_and_reason(client, second_bundle, missing):
+    first = _model(client)
+    partial = {k: v for k, v in CHANGE.items() if k != missing}
+    files = {"bundle": ("second.kgm", second_bundle.read_bytes())}
+    for r in (
+        client.put("/v1/model", files=files, data=partial, headers=ADMIN_AUTH),
+        client.put("/v1/model", files=files, data={**partial, missing: ""}, headers=ADMIN_AUTH),
+    ):
+        assert r.status_code == 422 and r.headers["content-type"] == "application/problem+json", r.text
+        assert r.json()["errors"][0]["field"] == missing
+    assert _model(client)["sha256"] == first["sha256"] and [e[0] for e in _events(client)] == ["load"]
+    swapped = client.put("/v1/model", files=files, data=CHANGE, headers=ADMIN_AUTH).json()
+    for body in (partial, {**partial, missing: "a\x00b"}, None):
+        r = client.post("/v1/model/rollback", json=body, headers=ADMIN_AUTH)
+        assert r.status_code == 422 and r.headers["content-type"] == "application/problem+json", r.text
+    assert _model(client)["sha256"] == swapped["sha256"] and [e[0] for e in _events(client)] == ["load", "swap"]
+    r = client.post(
+        "/v1/model/rollback", json={"operator": "Lee", "reason": "lot 8 flags too much"}, headers=ADMIN_AUTH
+    )
+    assert r.status_code == 200 and r.json()["sha256"] == first["sha256"]
+    [rollback, swap, _] = client.get("/v1/model/events", headers=STATION_AUTH).json()["items"]
+    assert (rollback["kind"], rollback["operator"], rollback["reason"]) == ("rollback", "Lee", "lot 8 flags too much")
+    assert rollback["model"] == {k: first[k] for k in ("id", "revision", "sha256")}
+    assert (swap["kind"], swap["operator"], swap["reason"]) == ("swap", "Dana", CHANGE["reason"])
+    assert swap["model"] == {k: swapped[k] for k in ("id", "revision", "sha256")}
 
 
 def test_rollback_without_previous_is_409(client):
-    r = client.post("/v1/model/rollback", headers=ADMIN_AUTH)
+    r = client.post("/v1/model/rollback", json=CHANGE, headers=ADMIN_AUTH)
     assert r.status_code == 409
     assert "no previous model" in r.json()["detail"]
 
@@ -115,7 +148,9 @@ def test_threshold_survives_a_restart_for_the_same_bundle(make_client, make_sett
 def test_restart_serves_the_threshold_last_served_with_that_bundle(make_client, tiny_bundle):
     client = make_client()
     client.put("/v1/model/threshold", json={"threshold": 1.5, "operator": "Dana"}, headers=ADMIN_AUTH)
-    r = client.put("/v1/model", files={"bundle": ("same.kgm", tiny_bundle.read_bytes())}, headers=ADMIN_AUTH)
+    r = client.put(
+        "/v1/model", files={"bundle": ("same.kgm", tiny_bundle.read_bytes())}, data=CHANGE, headers=ADMIN_AUTH
+    )
     assert r.json()["threshold"]["value"] == 3.0  # an upload serves the bundle as it is
     client.__exit__(None, None, None)
     assert _model(make_client())["threshold"]["value"] == 3.0
@@ -140,7 +175,7 @@ def test_without_a_model_the_service_is_not_ready_until_an_upload(make_client, t
     assert r.status_code == 503 and "PUT /v1/model" in r.json()["detail"]
     assert client.get("/v1/model", headers=STATION_AUTH).status_code == 503
     assert row_count(client) == 0
-    r = client.put("/v1/model", files={"bundle": ("m.kgm", tiny_bundle.read_bytes())}, headers=ADMIN_AUTH)
+    r = client.put("/v1/model", files={"bundle": ("m.kgm", tiny_bundle.read_bytes())}, data=CHANGE, headers=ADMIN_AUTH)
     assert r.status_code == 200 and r.json()["previous"] is None
     assert client.get("/readyz").status_code == 200
     assert post_image(client, good_png).status_code == 200
@@ -163,7 +198,9 @@ def test_onnx_runtime_scores_like_pytorch(make_client, tiny_good_images, tmp_pat
 def test_a_swap_and_its_threshold_survive_a_restart(make_client, second_bundle, good_png, caplog):
     client = make_client()
     first = _model(client)
-    swapped = client.put("/v1/model", files={"bundle": ("s.kgm", second_bundle.read_bytes())}, headers=ADMIN_AUTH)
+    swapped = client.put(
+        "/v1/model", files={"bundle": ("s.kgm", second_bundle.read_bytes())}, data=CHANGE, headers=ADMIN_AUTH
+    )
     client.put("/v1/model/threshold", json={"threshold": 1.25, "operator": "Dana"}, headers=ADMIN_AUTH)
     client.__exit__(None, None, None)
     with caplog.at_level("INFO", logger="knowngood.service"):
@@ -174,7 +211,7 @@ def test_a_swap_and_its_threshold_survive_a_restart(make_client, second_bundle, 
     [line] = [r.getMessage() for r in caplog.records if r.getMessage().startswith("serving model")]
     assert m["id"] in line and "made current by threshold" in line and "unchanged" in line
     assert post_image(restarted, good_png).json()["threshold"] == 1.25
-    back = restarted.post("/v1/model/rollback", headers=ADMIN_AUTH).json()  # the rollback history is kept
+    back = restarted.post("/v1/model/rollback", json=CHANGE, headers=ADMIN_AUTH).json()  # the rollback history is kept
     assert (back["sha256"], back["threshold"]["value"]) == (first["sha256"], 3.0)
     restarted.__exit__(None, None, None)
     assert _model(make_client(model_path=None))["sha256"] == first["sha256"]  # no flag: what was served
@@ -184,7 +221,9 @@ def test_a_new_command_line_bundle_replaces_the_swapped_model(
     make_client, tiny_bundle, second_bundle, tmp_path, caplog
 ):
     client = make_client(model_path=second_bundle)
-    tiny = client.put("/v1/model", files={"bundle": ("t.kgm", tiny_bundle.read_bytes())}, headers=ADMIN_AUTH).json()
+    tiny = client.put(
+        "/v1/model", files={"bundle": ("t.kgm", tiny_bundle.read_bytes())}, data=CHANGE, headers=ADMIN_AUTH
+    ).json()
     client.__exit__(None, None, None)
     restarted = make_client(model_path=second_bundle)
     assert _model(restarted)["sha256"] == tiny["sha256"]  # the same flag: the swap stands
@@ -209,7 +248,7 @@ def test_uploaded_bundles_are_retained_with_a_limit(make_client, second_bundle):
     for i in range(5):
         path = folder.parent / f"b{i}.kgm"
         bundle.save(dataclasses.replace(det, threshold=2.0 + i / 10), frechet, path)
-        r = client.put("/v1/model", files={"bundle": ("b.kgm", path.read_bytes())}, headers=ADMIN_AUTH)
+        r = client.put("/v1/model", files={"bundle": ("b.kgm", path.read_bytes())}, data=CHANGE, headers=ADMIN_AUTH)
         uploads.append(r.json()["sha256"])
         for p in folder.glob("*.kgm"):  # distinct times on any file system
             os.utime(p, ns=(p.stat().st_mtime_ns - 10**9, p.stat().st_mtime_ns - 10**9))

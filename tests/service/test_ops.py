@@ -5,12 +5,17 @@ from __future__ import annotations
 import csv
 import io
 import re
+from html.parser import HTMLParser
 from pathlib import Path
+from urllib.parse import urlsplit
 
+import httpx
 import numpy as np
 import pytest
-from service_testkit import STATION_AUTH, png_bytes, post_image
+from prometheus_client.parser import text_string_to_metric_families
+from service_testkit import STATION_AUTH, png_bytes, post_image, start_server
 
+from service.drift import STATES
 from training import bundle
 
 SAMPLE = re.compile(
@@ -59,7 +64,8 @@ def test_metrics_in_prometheus_text_format(client, tiny_good_images):
     assert s['knowngood_http_requests_total{method="POST",route="/v1/inspections",status="422"}'] == 1
     assert s['knowngood_inspections_total{verdict="pass"}'] + s['knowngood_inspections_total{verdict="flag"}'] == 3
     model = client.get("/v1/model", headers=STATION_AUTH).json()
-    assert s[f'knowngood_model_info{{model_id="{model["id"]}",sha256="{model["sha256"]}"}}'] == 1
+    info = f'knowngood_model_info{{model_id="{model["id"]}",revision="{model["revision"]}",sha256="{model["sha256"]}"}}'
+    assert s[info] == 1
     assert s["knowngood_threshold"] == 3.0
     assert s["knowngood_anomaly_score_count"] == 3
     assert 0 <= s['knowngood_anomaly_score{quantile="0.5"}'] <= s['knowngood_anomaly_score{quantile="0.99"}']
@@ -191,6 +197,8 @@ def test_openapi_is_truthful(client):
         ("get", "/v1/inspections/{inspection_id}"),
         ("get", "/v1/inspections/{inspection_id}/heatmap.png"),
         ("post", "/v1/inspections/{inspection_id}/review"),
+        ("get", "/v1/inspections/{inspection_id}/reviews"),
+        ("get", "/v1/inspections/{inspection_id}/image.png"),
         ("get", "/v1/model"),
         ("get", "/v1/model/events"),
         ("put", "/v1/model"),
@@ -202,6 +210,7 @@ def test_openapi_is_truthful(client):
         ("get", "/readyz"),
         ("get", "/metrics"),
         ("get", "/"),
+        ("get", "/heatmap-legend.png"),
     }
     found = {(m, p) for p, ops in spec["paths"].items() for m in ops}
     assert found == expected
@@ -223,3 +232,69 @@ def test_openapi_is_truthful(client):
 def test_reads_need_a_token(client, path):
     r = client.get(path)
     assert r.status_code == 401 and r.headers["content-type"] == "application/problem+json"
+
+
+def _gauges(text: str) -> dict[str, dict[tuple, float]]:
+    """Prometheus text, parsed by prometheus-client's own parser: family name -> {label items: value}."""
+    return {
+        family.name: {tuple(sorted(sample.labels.items())): sample.value for sample in family.samples}
+        for family in text_string_to_metric_families(text)
+    }
+
+
+def test_drift_state_distance_and_reference_in_metrics(tiny_bundle, tiny_good_images, tmp_path):
+    server = start_server(tiny_bundle, tmp_path / "server", extra_env={"KNOWNGOOD_DRIFT_MIN_IMAGES": "4"})
+    try:
+        with httpx.Client(base_url=server.url, headers=STATION_AUTH, timeout=60) as http:
+            before = _gauges(http.get("/metrics").text)
+            assert before["knowngood_drift_state"] == {
+                (("state", s),): float(s == "not_enough_images") for s in STATES
+            }  # one gauge per state, 1 for the state now
+            assert before["knowngood_drift_images"] == {(): 0.0}
+            assert "knowngood_drift_distance" not in before  # nothing assessed yet: no made-up number
+            for img in tiny_good_images[:6]:
+                assert http.post("/v1/inspections", files={"image": ("p.png", png_bytes(img))}).status_code == 200
+            after = _gauges(http.get("/metrics").text)
+            drift = http.get("/v1/drift").json()
+    finally:
+        server.stop()
+    assert drift["status"] in ("ok", "drifting") and drift["distance"] is not None
+    assert after["knowngood_drift_state"] == {(("state", s),): float(s == drift["status"]) for s in STATES}
+    assert after["knowngood_drift_images"] == {(): 6.0}
+    for name in ("distance", "reference_mean", "reference_std", "limit"):
+        assert after[f"knowngood_drift_{name}"][()] == pytest.approx(drift[name], rel=1e-9), name
+    assert after["knowngood_drift_distance"][()] > 0 and after["knowngood_drift_reference_mean"][()] > 0
+
+
+class _Links(HTMLParser):
+    def __init__(self) -> None:
+        super().__init__()
+        self.urls: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self.urls += [value for name, value in attrs if name in ("src", "href") and value]
+
+
+def test_docs_work_offline(live_server):
+    with httpx.Client(base_url=live_server.url, timeout=30) as http:
+        r = http.get("/docs")
+        assert r.status_code == 200 and r.headers["content-type"].startswith("text/html")
+        assert "SwaggerUIBundle" in r.text and "'/openapi.json'" in r.text
+        assert not re.search(r"(https?:)?//[a-z0-9]", r.text, re.IGNORECASE), "the page names another host"
+        links = _Links()
+        links.feed(r.text)
+        scripts = [u for u in links.urls if u.endswith(".js")]
+        styles = [u for u in links.urls if u.endswith(".css")]
+        assert scripts and styles
+        for url in links.urls:
+            assert not urlsplit(url).netloc and url.startswith("/"), url
+            asset = http.get(url)
+            assert asset.status_code == 200, url
+        for url in scripts:
+            asset = http.get(url)
+            assert "javascript" in asset.headers["content-type"] and "SwaggerUIBundle" in asset.text, url
+        for url in styles:
+            asset = http.get(url)
+            assert asset.headers["content-type"].startswith("text/css") and ".swagger-ui" in asset.text, url
+        assert http.get("/openapi.json").json()["paths"]
+        assert http.get("/redoc").status_code == 404  # ReDoc would load its script from a CDN: not served

@@ -7,7 +7,7 @@ import logging
 import threading
 
 import pytest
-from service_testkit import ADMIN, ADMIN_AUTH, STATION_AUTH, post_image, row_count
+from service_testkit import ADMIN, ADMIN_AUTH, CHANGE, STATION_AUTH, post_image, row_count
 
 from service import pipeline
 
@@ -50,7 +50,7 @@ def test_the_bundle_limit_is_for_admins_only(make_client):
     assert client.put("/v1/model", files=big, headers=STATION_AUTH).status_code == 403
     r = client.post("/v1/inspections", files={"image": ("a.png", b"\0" * 512 * 1024)}, headers=ADMIN_AUTH)
     assert r.status_code == 413 and "4096" in r.json()["detail"]  # inspections get the upload limit, admin or not
-    r = client.put("/v1/model", files=big, headers=ADMIN_AUTH)
+    r = client.put("/v1/model", files=big, data=CHANGE, headers=ADMIN_AUTH)
     assert r.status_code == 422 and "not a readable bundle" in r.json()["detail"]  # past the gate and the limit
 
 

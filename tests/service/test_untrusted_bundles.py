@@ -11,7 +11,7 @@ import struct
 import zipfile
 
 import pytest
-from service_testkit import ADMIN_AUTH, STATION_AUTH, post_image, row_count
+from service_testkit import ADMIN_AUTH, CHANGE, STATION_AUTH, post_image, row_count
 
 from training import bundle, bundle_check
 from training.errors import BadBundle
@@ -57,7 +57,7 @@ def _model(client) -> dict:
 
 
 def _put(client, data: bytes):
-    return client.put("/v1/model", files={"bundle": ("m.kgm", data)}, headers=ADMIN_AUTH)
+    return client.put("/v1/model", files={"bundle": ("m.kgm", data)}, data=CHANGE, headers=ADMIN_AUTH)
 
 
 def _set(section: str, key: str, value):
