@@ -22,7 +22,7 @@ from service.overlay import overlay_base, overlay_png, overlay_size
 from service.schemas import ImageInfo, InspectionCreated, InspectionOut, ModelRef, ReviewOut
 from service.settings import Caller
 from service.store import InspectionRecord, Review, to_iso, utc_now
-from training.data import decode_image
+from training.data import decode_image, min_side_for
 from training.detector import Prepared, verdict
 from training.errors import BadImage
 
@@ -42,8 +42,8 @@ verdict_for = verdict  # the one convention (training.detector.verdict): flagged
 
 
 def min_side(state: ServiceState, model: LoadedModel) -> int:
-    """Images far smaller than the working size cannot show what the model learned: at least a quarter of it."""
-    return max(state.settings.min_side, model.detector.cfg.size // 4)
+    """Images far smaller than the working size cannot show what the model learned: the command line's rule."""
+    return min_side_for(model.detector.cfg.size, state.settings.min_side)
 
 
 @dataclass(frozen=True)

@@ -6,7 +6,6 @@ Exit codes: 0 done; 1 flagged parts found (inspect --fail-on-flag only); 2 bad u
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import sys
 from importlib.metadata import entry_points
@@ -65,8 +64,11 @@ def _add_tune(sub) -> None:
     target.add_argument("--target-false-reject", type=float, default=None, metavar="A")
     target.add_argument("--target-catch", type=float, default=None, metavar="C")
     p.add_argument("--report", type=Path, default=None, metavar="DIR")
-    p.add_argument("-o", "--output", type=Path, default=None, help="write the tuned bundle here (default: MODEL)")
-    p.add_argument("--skip-bad", action="store_true")
+    out = p.add_mutually_exclusive_group()
+    out.add_argument("-o", "--output", type=Path, default=None, metavar="OUT", help="write the tuned bundle here")
+    out.add_argument("--in-place", action="store_true", help="rewrite MODEL with the tuned threshold")
+    p.add_argument("--json", action="store_true", help="print the whole summary as JSON instead of a few lines")
+    p.add_argument("--skip-bad", action="store_true", help="skip unreadable images and report them")
     p.set_defaults(func=cmd_tune)
 
 
@@ -77,7 +79,8 @@ def _add_inspect(sub) -> None:
     p.add_argument(
         "--json",
         action="store_true",
-        help="one JSON object a line: image, score, threshold, verdict (+ heatmap with --heatmaps)",
+        help="one JSON object a line: image, score, threshold, verdict, model_id, revision, time "
+        "(+ heatmap with --heatmaps)",
     )
     p.add_argument(
         "--heatmaps",
@@ -156,10 +159,6 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("knowngood: interrupted (a training checkpoint, if any, lets the run resume)", file=sys.stderr)
         return 130
-
-
-def print_json(obj) -> None:
-    print(json.dumps(obj, separators=(",", ":")))
 
 
 if __name__ == "__main__":

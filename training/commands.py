@@ -14,11 +14,11 @@ import numpy as np
 
 from training import bundle, runtime
 from training.config import ModelConfig, TrainConfig
-from training.data import fingerprint, list_images, load_folder, read_image
+from training.data import fingerprint, list_images, load_folder, min_side_for, read_image, skip_reason
 from training.errors import BadConfig, BadDataset, BadImage
 from training.heatmap import heatmap_png_bytes
 from training.selection import term_summary
-from training.train import train_bundle
+from training.train import scale_note, train_bundle
 from training.tuning import threshold_for_catch, threshold_for_false_reject
 
 
@@ -48,12 +48,14 @@ def train(args) -> int:
     _positive("--minutes", args.minutes)
     _positive("--steps", args.steps)
     _writable_output(args.output)
-    good = load_folder(args.good_dir, skip_bad=args.skip_bad)
-    for path, why in good.skipped:
-        print(f"knowngood: skipped {path}: {why}", file=sys.stderr)
+    good = load_folder(args.good_dir, skip_bad=args.skip_bad, min_side=min_side_for(args.size))
+    _report_skipped(good.skipped)
     steps = args.steps if args.steps is not None else 10**9
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
     model = ModelConfig(size=args.size, tile=args.tile, channels=good.channels)
+    note = scale_note(good.images, model)
+    if note:
+        print(f"knowngood: note: {note}", file=sys.stderr)
     shifts = TrainConfig.residual_shifts
     if args.residual_shift is not None:  # fixed by the user: the choice of terms keeps it
         model = dataclasses.replace(model, residual_shift=args.residual_shift)
@@ -80,9 +82,21 @@ def train(args) -> int:
     return 0
 
 
+def _report_skipped(skipped: list[tuple[Path, str]]) -> None:
+    """One stderr line per image `--skip-bad` left out, naming it once."""
+    for path, why in skipped:
+        print(f"knowngood: skipped {path}: {why}", file=sys.stderr)
+
+
 def tune(args) -> int:
     _rate("--target-false-reject", args.target_false_reject)
     _rate("--target-catch", args.target_catch)
+    if args.output is None and not args.in_place:  # the model file is the user's record: never rewritten unasked
+        raise BadConfig(
+            f"tune: give -o OUT to write the tuned bundle to a new file, or --in-place to rewrite {args.model}"
+        )
+    output = args.model if args.in_place else args.output
+    _writable_output(output)
     summary = tune_model(
         args.model,
         args.good,
@@ -91,11 +105,48 @@ def tune(args) -> int:
         target_catch=args.target_catch,
         target_false_reject=args.target_false_reject,
         report=args.report,
-        output=args.output,
+        output=output,
         skip_bad=args.skip_bad,
     )
-    print(json.dumps(summary, indent=2, default=float))
+    for warning in summary["warnings"]:
+        print(f"knowngood: warning: {warning}", file=sys.stderr)
+    if args.json:
+        print(json.dumps(summary, indent=2, default=float))
+    else:
+        print(tune_text(summary))
     return 0
+
+
+def tune_text(summary: dict) -> str:
+    """The few lines a person reads after `tune`: the threshold and its target, the rates it achieves with their
+    intervals, the AUROCs, and where the bundle and the report are."""
+    from training.report import mask_coverage, rate_text
+
+    th = summary["threshold"]
+    goal = (
+        f"a catch rate of at least {100 * th['target']:g} %"
+        if th["method"] == "catch"
+        else f"a false-reject rate of at most {100 * th['target']:g} %"
+    )
+    quality = f"image AUROC {_num(summary['image_auroc'])}, average precision {_num(summary['average_precision'])}"
+    if summary["masks"] is not None:
+        quality += (
+            f"; pixel AUROC {_num(summary['pixel_auroc'])}, PRO {_num(summary['pro'])} ({mask_coverage(summary)})"
+        )
+    report = f"report {summary['report']}" if "report" in summary else "no report (--report DIR writes one)"
+    return "\n".join(
+        [
+            f"threshold {th['value']:.4g} for {goal}: a part is flagged when its score is above it",
+            f"  false-reject rate  {rate_text(summary['false_reject'])}",
+            f"  catch rate         {rate_text(summary['catch'])}",
+            f"  {quality}",
+            f"wrote {summary['bundle']} (model {summary['model_id']}, revision {summary['revision']}); {report}",
+        ]
+    )
+
+
+def _num(x: float | None) -> str:
+    return "n/a" if x is None else f"{x:.3f}"
 
 
 def tune_model(
@@ -104,21 +155,22 @@ def tune_model(
     defective: Path,
     masks: Path | None,
     *,
+    output: Path,
     target_catch: float | None = None,
     target_false_reject: float | None = None,
     report: Path | None = None,
-    output: Path | None = None,
     skip_bad: bool = False,
 ) -> dict:
-    """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves, writes the report."""
+    """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves the tuned bundle to
+    `output` (which may be `model` itself), writes the report; returns the summary (`report.metrics_summary` plus
+    where things went and the tuned bundle's identity)."""
     from training.holdout import load_holdout  # matplotlib comes with the report: keep `inspect` light
     from training.report import metrics_summary, write_report
 
     det, frechet = bundle.load(model)
     holdout = load_holdout(det, good, defective, masks, skip_bad=skip_bad)
+    _report_skipped(holdout.skipped)
     good_s, bad_s = holdout.scores[holdout.labels == 0], holdout.scores[holdout.labels == 1]
-    if len(good_s) == 0 or len(bad_s) == 0:
-        raise BadDataset("the holdout needs at least one good and one defective image")
     if target_catch is not None:
         choice = threshold_for_catch(good_s, bad_s, target_catch)
     else:
@@ -127,31 +179,58 @@ def tune_model(
     manifest = dict(det.manifest)
     manifest["threshold"] = {**choice.to_dict(), "set_by": "tune", "set_at": now}
     manifest["fingerprints"] = {**manifest.get("fingerprints", {}), "holdout": fingerprint(holdout.paths)}
-    tuned = dataclasses.replace(det, threshold=float(choice.value), manifest=manifest)
-    out = output or model
-    bundle.save(tuned, frechet, out)
+    folders = {"good": str(good), "defective": str(defective), "masks": None if masks is None else str(masks)}
+    manifest["folders"] = {**manifest.get("folders", {}), "holdout": folders}
+    bundle.save(dataclasses.replace(det, threshold=float(choice.value), manifest=manifest), frechet, output)
+    tuned, _ = bundle.load(output)  # what was written: its sha256, model id and revision
     summary = metrics_summary(holdout, choice)
+    summary.update(model_id=tuned.model_id, revision=tuned.revision, sha256=tuned.sha256)
     if report is not None:
         page = write_report(
             report,
             holdout,
             choice,
             title=f"knowngood report: {Path(model).name}",
-            model_info=_model_info(tuned, out),
+            model_info=_model_info(tuned, output),
         )
         summary["report"] = str(page)
-    summary["bundle"] = str(out)
+    summary["bundle"] = str(output)
     return summary
 
 
 def _model_info(det, out: Path) -> dict:
-    """The report's model table: identity, and which terms were chosen and why (from the bundle)."""
-    info = {"model_id": det.model_id, "bundle": str(out)}
-    choice = det.manifest.get("score", {}).get("choice", {})
-    info["terms"] = term_summary(choice) if "chosen" in choice else choice.get("method", "not recorded")
+    """The report's Model table (label: value): the tuned bundle's identity, what it was trained on and for how
+    long, which holdout tuned it, and which terms were chosen and why (all from the bundle)."""
+    m = det.manifest
+    folders, prints, training = m.get("folders", {}), m.get("fingerprints", {}), m.get("training", {})
+    holdout = folders.get("holdout") or {}
+    info = {
+        "Model id": det.model_id,
+        "Revision": det.revision,
+        "Bundle": str(out),
+        "Bundle sha256": det.sha256,
+        "Training images": _folder_text(folders.get("training"), prints.get("training")),
+        "Training": (
+            f"{training['steps_done']} steps in {training['seconds']:.0f} s"
+            if "steps_done" in training and "seconds" in training
+            else "not recorded"
+        ),
+        "Holdout images": _folder_text(
+            f"good {holdout['good']}, defective {holdout['defective']}" if holdout else None, prints.get("holdout")
+        ),
+    }
+    if holdout.get("masks"):
+        info["Holdout masks"] = holdout["masks"]
+    choice = m.get("score", {}).get("choice", {})
+    info["Terms"] = term_summary(choice) if "chosen" in choice else choice.get("method", "not recorded")
     if det.cfg.tile:
-        info["tiles"] = f"{det.cfg.tile} px at the camera's scale, each at {det.cfg.size} px"
+        info["Tiles"] = f"{det.cfg.tile} px at the camera's scale, each at {det.cfg.size} px"
     return info
+
+
+def _folder_text(folder: str | None, sha: str | None) -> str:
+    where = folder or "folder not recorded"
+    return f"{where} (fingerprint {sha})" if sha else where
 
 
 def _expand(paths: list[Path]) -> list[Path]:
@@ -197,6 +276,7 @@ def inspect(args) -> int:
     if runtime.available():
         det.use_onnx()  # the same graph and weights as eager PyTorch, about 3x faster on a CPU (tests pin equality)
     files = _expand(args.paths)
+    min_side = min_side_for(det.cfg.size)  # the service's limit for this model, too
     names = {}
     if args.heatmaps is not None:
         args.heatmaps.mkdir(parents=True, exist_ok=True)
@@ -206,25 +286,26 @@ def inspect(args) -> int:
         chunk, images = [], []
         for path in files[start : start + args.batch]:
             try:
-                images.append(read_image(path))
+                images.append(read_image(path, min_side=min_side))
                 chunk.append(path)
             except BadImage as exc:
                 if not args.skip_bad:
                     raise
-                print(f"knowngood: skipped {path}: {exc}", file=sys.stderr)
+                _report_skipped([(path, skip_reason(path, exc))])
         for path, img, res in zip(chunk, images, det.inspect(images)):
             flagged += res.verdict == "flag"
-            _emit(args, path, img, res, names.get(path), det.model_id)
+            _emit(args, path, img, res, names.get(path), det)
     return 1 if args.fail_on_flag and flagged else 0
 
 
-def _emit(args, path: Path, img: np.ndarray, res, name: str | None, model_id: str) -> None:
+def _emit(args, path: Path, img: np.ndarray, res, name: str | None, det) -> None:
     row = {
         "image": str(path),
         "score": round(res.score, 6),
         "threshold": round(res.threshold, 6),
         "verdict": res.verdict,
-        "model_id": model_id,
+        "model_id": det.model_id,
+        "revision": det.revision,
         "time": dt.datetime.now(dt.timezone.utc).isoformat(timespec="milliseconds"),
     }
     if name is not None:

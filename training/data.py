@@ -21,7 +21,7 @@ from training.errors import BadDataset, BadImage, ImageTooLarge
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
 MAX_PIXELS = 64_000_000  # decompression-bomb guard: 8000 x 8000
-MIN_SIDE = 16  # smaller than this cannot show a part
+MIN_SIDE = 16  # smaller than this cannot show a part; for a given model see `min_side_for`
 BYTES_PER_PIXEL = 8  # decoded-size bound: max_pixels x this many bytes (a gray image at the pixel limit as float32
 # takes 4, a colour one 12: colour images may have two thirds of the pixel limit, 16-bit RGBA ones the same)
 _GRAY_MODES = ("1", "L", "LA", "I;16", "I;16B", "I;16L", "I", "F")
@@ -194,6 +194,18 @@ def _same_planes(planes: list[np.ndarray]) -> bool:
     return all(np.array_equal(a[i], b[i]) and np.array_equal(b[i], c[i]) for i in range(a.shape[0]))
 
 
+def min_side_for(size: int, floor: int = MIN_SIDE) -> int:
+    """The smallest side an image may have for a model of working size `size` (its long side, px): a quarter of
+    it, and never under `floor`. An image enlarged more than four times holds no detail the model learned, so
+    its score would mean little. The command line and the service both apply this rule."""
+    return max(floor, size // 4)
+
+
+def skip_reason(path: Path, exc: Exception) -> str:
+    """Why `path` was skipped, without the path the error message already starts with (it is printed once)."""
+    return str(exc).removeprefix(f"{path}: ")
+
+
 def read_image(path: Path, **limits) -> np.ndarray:
     """Reads one image file; the error names the file."""
     try:
@@ -253,7 +265,8 @@ class ImageSet:
 
     paths: list[Path]
     images: list[np.ndarray]
-    skipped: list[tuple[Path, str]] = field(default_factory=list)
+    skipped: list[tuple[Path, str]] = field(default_factory=list)  # (path, reason without the path)
+    folder: Path | None = None  # the folder as given, for the bundle's and the report's record
 
     @property
     def channels(self) -> int:
@@ -273,17 +286,18 @@ def fingerprint(paths: list[Path]) -> str:
     return h.hexdigest()
 
 
-def load_folder(folder: Path, *, skip_bad: bool = False, min_count: int = 1) -> ImageSet:
-    """Reads every image under `folder`. An unreadable file is an error naming it, or skipped and reported."""
+def load_folder(folder: Path, *, skip_bad: bool = False, min_count: int = 1, **limits) -> ImageSet:
+    """Reads every image under `folder` (`limits`: as `decode_image`'s). An unreadable file is an error naming it,
+    or skipped and reported."""
     paths, images, skipped = [], [], []
     for path in list_images(folder):
         try:
-            images.append(read_image(path))
+            images.append(read_image(path, **limits))
             paths.append(path)
         except BadImage as exc:
             if not skip_bad:
                 raise
-            skipped.append((path, str(exc)))
+            skipped.append((path, skip_reason(path, exc)))
     if len(images) < min_count:
         raise BadDataset(f"{folder}: found {len(images)} readable images, need at least {min_count}")
-    return ImageSet(paths=paths, images=images, skipped=skipped)
+    return ImageSet(paths=paths, images=images, skipped=skipped, folder=Path(folder))

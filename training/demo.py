@@ -35,6 +35,7 @@ def run_demo(out: Path, *, steps: int | None = None, minutes: float | None = Non
             root / "holdout" / "good",
             root / "holdout" / "defective",
             root / "holdout" / "masks",
+            output=model_path,  # the demo's own fresh bundle: tuned in place on purpose
             target_false_reject=DEMO_TARGET_FALSE_REJECT,
             report=out / "reports" / kind,
         )

@@ -9,6 +9,7 @@ The checkpoint kept is the one with the lowest held-out reconstruction error (se
 from __future__ import annotations
 
 import copy
+import sys
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -16,13 +17,13 @@ from pathlib import Path
 import numpy as np
 import torch
 import torch.nn.functional as F
+from tqdm import tqdm
 
 from training.augment import process_variation, random_patches
 from training.checkpoint import load_checkpoint, save_checkpoint
 from training.config import ModelConfig, TrainConfig
 from training.frechet import sample_distance
 from training.nets import Critic, Encoder, Generator, build
-from training.progress import Progress
 
 
 @dataclass
@@ -136,8 +137,8 @@ class Fitter:
         z = torch.rand(len(v), self.mcfg.z_channels, h, w, generator=gen)
         z = z.to(self.device)
         fake = torch.cat([self.G(z[i : i + 64] * 2 - 1) for i in range(0, len(z), 64)])
-        real_f = self.D.pooled_features(v).double().numpy()
-        fake_f = self.D.pooled_features(fake).double().numpy()
+        real_f = self.D.pooled_features(v).double().cpu().numpy()  # NumPy reads host memory only
+        fake_f = self.D.pooled_features(fake).double().cpu().numpy()
         half = len(real_f) // 2
         fd = sample_distance(fake_f, real_f) if len(real_f) >= 4 else float("nan")
         floor = sample_distance(real_f[:half], real_f[half:]) if half >= 2 else float("nan")
@@ -176,27 +177,52 @@ def fit(
     if checkpoint is not None and checkpoint.exists():
         load_checkpoint(fitter, checkpoint)
     budget = tcfg.minutes * 60 if tcfg.minutes else None
-    bar = Progress(tcfg.steps, budget, enabled=progress)
+    bar = progress_bar(fitter.step / tcfg.steps, enabled=progress)
     start = time.monotonic()
     gan_steps = int(tcfg.steps * tcfg.gan_share) if tcfg.recipe == "two_stage" else tcfg.steps
     last: dict[str, float] = {}
+    losses: dict[str, float] = {}
     while fitter.step < tcfg.steps and not (budget and time.monotonic() - start > budget):
         losses = fitter.train_step(encoder_only=fitter.step >= gan_steps)
         if fitter.step % tcfg.eval_every == 0 or fitter.step == tcfg.steps:
             last = fitter.evaluate()
             fitter.remember(last)
         if fitter.step % 10 == 0 or fitter.step == tcfg.steps:
-            bar.update(fitter.step, **losses, **last)
+            by_time = (time.monotonic() - start) / budget if budget else 0.0
+            show(bar, max(fitter.step / tcfg.steps, by_time), fitter.step, {**losses, **last})
         if checkpoint is not None and fitter.step % tcfg.checkpoint_every == 0:
             save_checkpoint(fitter, checkpoint)
     if not fitter.history or fitter.history[-1]["step"] != fitter.step:
         fitter.remember(fitter.evaluate())
+    show(bar, 1.0, fitter.step, {**losses, **last})  # the step count or the time cap ended the run
     bar.close()
     _, chosen, state = fitter.best
     for key, net in (("E", fitter.E), ("G", fitter.G), ("D", fitter.D)):
         net.load_state_dict(state[key])
         net.cpu().eval()
     return FitResult(fitter.E, fitter.G, fitter.D, fitter.step, time.monotonic() - start, chosen, fitter.history)
+
+
+PROGRESS_UNITS = 1000  # the bar counts thousandths of the run: of the steps, or of the time cap when that ends it
+
+
+def progress_bar(done: float, *, enabled: bool) -> tqdm:
+    """A tqdm progress bar on stderr (fine when stderr is a file or a pipe) for a run that ends at its step count
+    or its time cap, whichever comes first; `done` is the share already done (a resumed run)."""
+    return tqdm(
+        total=PROGRESS_UNITS,
+        initial=int(done * PROGRESS_UNITS),
+        disable=not enabled,
+        file=sys.stderr,
+        bar_format="{percentage:3.0f}%|{bar:24}| {elapsed}<{remaining}{postfix}",  # postfix: ", step N  G ..."
+        mininterval=1.0,
+    )
+
+
+def show(bar: tqdm, done: float, step: int, values: dict[str, float]) -> None:
+    """Moves `bar` to the share `done` (0 to 1) of the run and shows the step and `values` (losses, distances)."""
+    bar.set_postfix_str("  ".join([f"step {step}", *(f"{k} {v:.4g}" for k, v in values.items())]), refresh=False)
+    bar.update(max(0, min(PROGRESS_UNITS, int(done * PROGRESS_UNITS)) - bar.n))
 
 
 def split_indices(n: int, share: float, seed: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

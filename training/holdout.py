@@ -7,7 +7,7 @@ from pathlib import Path
 
 import numpy as np
 
-from training.data import list_images, load_folder, read_image
+from training.data import list_images, load_folder, min_side_for, read_image
 from training.detector import Detector
 from training.errors import BadDataset, BadImage
 from training.report import HoldoutResult
@@ -32,9 +32,17 @@ def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.nda
 def load_holdout(
     det: Detector, good_dir: Path, defective_dir: Path, masks_dir: Path | None = None, *, skip_bad: bool = False
 ) -> HoldoutResult:
-    """Reads and scores the whole holdout as batches. Labels: 0 good, 1 defective."""
-    good = load_folder(good_dir, skip_bad=skip_bad)
-    bad = load_folder(defective_dir, skip_bad=skip_bad)
+    """Reads and scores the whole holdout as batches. Labels: 0 good, 1 defective. Images are held to the
+    model's smallest side (`min_side_for`), as the service holds them."""
+    limits = {"min_side": min_side_for(det.cfg.size)}
+    good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, **limits)
+    bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, **limits)
+    for option, folder, found in (("--good", good_dir, good), ("--defective", defective_dir, bad)):
+        if not found.images:  # before any scoring: the threshold and the report need both kinds
+            skipped = f" ({len(found.skipped)} unreadable, skipped)" if found.skipped else ""
+            raise BadDataset(
+                f"{option} {folder}: no readable images{skipped}; the holdout needs good and defective images"
+            )
     masks = [None] * len(good.images)
     for path, img in zip(bad.paths, bad.images):
         m = find_mask(path, defective_dir, masks_dir)
@@ -53,4 +61,5 @@ def load_holdout(
         images=images,
         heatmaps=[r.heatmap for r in results],
         masks=masks,
+        skipped=good.skipped + bad.skipped,
     )

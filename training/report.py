@@ -7,8 +7,9 @@ score > threshold.
 
 from __future__ import annotations
 
+import datetime as dt
 import html
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import matplotlib
@@ -19,12 +20,15 @@ from sklearn import metrics as skm
 matplotlib.use("Agg")  # files only, never a window; must precede the pyplot import
 import matplotlib.pyplot as plt  # noqa: E402
 
+from training import __version__  # noqa: E402
 from training.heatmap import overlay_png  # noqa: E402
 from training.metrics import average_precision, image_auroc, pixel_auroc, pro_score  # noqa: E402
 from training.tuning import Rate, ThresholdChoice, per_class_catch  # noqa: E402
 
 PRO_MAX_FPR = 0.3
 GALLERY_SIZE = 8
+GALLERY_COLUMNS = ("image", "heatmap", "mask")
+LARGE_SIDE = 512  # a gallery picture opens at least this large (small images enlarged by a whole factor)
 CAUTION = (
     "The verdict is decision support, not a release decision. Safety-critical parts still need the inspection "
     "that local codes and the customer's quality standards require."
@@ -42,6 +46,7 @@ class HoldoutResult:
     images: list[np.ndarray]  # (C, H, W) float32 in [0, 1]
     heatmaps: list[np.ndarray]  # (H, W) float32, same units as scores
     masks: list[np.ndarray | None]  # (H, W) bool or None
+    skipped: list[tuple[Path, str]] = field(default_factory=list)  # unreadable images left out (--skip-bad)
 
 
 def pixel_sets(h: HoldoutResult) -> tuple[list, list] | None:
@@ -62,25 +67,55 @@ def pixel_sets(h: HoldoutResult) -> tuple[list, list] | None:
 
 def metrics_summary(holdout: HoldoutResult, choice: ThresholdChoice) -> dict:
     """JSON-ready metrics of `holdout` at `choice.value` (flag when score > value); rates are recomputed on this
-    holdout with 95 % Clopper-Pearson intervals. A metric that needs a missing class or masks is None."""
+    holdout with 95 % Clopper-Pearson intervals. A metric that needs a missing class or masks is None. `masks`
+    says how many defective images had a mask; `warnings` lists what makes the numbers doubtful."""
     y, s, t = np.asarray(holdout.labels), np.asarray(holdout.scores, dtype=np.float64), float(choice.value)
     good, bad = s[y == 0], s[y == 1]
     both = len(good) > 0 and len(bad) > 0
     pix = pixel_sets(holdout)
     has_pix = pix is not None and any(m.any() for m in pix[0]) and not all(m.all() for m in pix[0])
     classes = {c: int(sum(1 for k in holdout.classes if k == c)) for c in sorted(set(holdout.classes))}
-    return {
+    masked = sum(1 for m, label in zip(holdout.masks, y, strict=True) if label == 1 and m is not None)
+    m = {
         "n": {"good": len(good), "defective": len(bad), "per_class": classes},
         "image_auroc": image_auroc(y, s) if both else None,
         "average_precision": average_precision(y, s) if both else None,
         "pixel_auroc": pixel_auroc(*pix) if has_pix else None,
         "pro": pro_score(*pix, max_fpr=PRO_MAX_FPR) if has_pix else None,
         "pro_max_fpr": PRO_MAX_FPR,
+        "masks": {"with_mask": masked, "defective": len(bad)} if masked else None,
         "threshold": choice.to_dict(),
         "false_reject": asdict(Rate.of(int((good > t).sum()), len(good))) if len(good) else None,
         "catch": asdict(Rate.of(int((bad > t).sum()), len(bad))) if len(bad) else None,
         "per_class_catch": {c: asdict(r) for c, r in per_class_catch(s, holdout.classes, t).items()},
     }
+    m["warnings"] = holdout_warnings(m)
+    return m
+
+
+def mask_coverage(m: dict) -> str:
+    """'from masks of k of n defective images': what the pixel metrics of summary `m` rest on."""
+    masks = m["masks"]
+    return "" if masks is None else f"from masks of {masks['with_mask']} of {masks['defective']} defective images"
+
+
+def holdout_warnings(m: dict) -> list[str]:
+    """What makes the summary `m` doubtful, one sentence each: an image AUROC below chance (higher scores should
+    mean defective), pixel metrics that rest on fewer than half of the defective images."""
+    out = []
+    auroc = m["image_auroc"]
+    if auroc is not None and auroc < 0.5:
+        out.append(
+            f"image AUROC {auroc:.3f} is below 0.5: the defective images score lower than the good ones, so the "
+            "good and defective folders are probably swapped"
+        )
+    masks = m["masks"]
+    if masks is not None and masks["with_mask"] < masks["defective"] / 2:
+        out.append(
+            f"pixel AUROC and PRO {mask_coverage(m)}, fewer than half: masks match a defective image by its "
+            "relative path and stem"
+        )
+    return out
 
 
 # ---------------------------------------------------------------- plots (one PNG each)
@@ -171,8 +206,18 @@ def _to_uint8(image: np.ndarray) -> Image.Image:
     return Image.fromarray((img * 255 + 0.5).astype(np.uint8))
 
 
+def _large(picture: Image.Image) -> Image.Image:
+    """The picture a thumbnail opens: its own resolution, enlarged by a whole factor (pixels kept sharp) when its
+    long side is under LARGE_SIDE, so a small image is still large enough to judge."""
+    factor = LARGE_SIDE // max(picture.size)
+    if factor <= 1:
+        return picture
+    return picture.resize((picture.width * factor, picture.height * factor), Image.Resampling.NEAREST)
+
+
 def _gallery(out: Path, h: HoldoutResult, t: float) -> dict[str, list[dict]]:
-    """Escapes (defective, lowest scores, passed) and false rejects (good, highest scores, flagged), up to 8 each."""
+    """Escapes (defective, lowest scores, passed) and false rejects (good, highest scores, flagged), up to 8 each;
+    each with its image, heatmap overlay and (when there is one) mask as PNG files in out/gallery."""
     s, y = np.asarray(h.scores, dtype=np.float64), np.asarray(h.labels)
     escapes = [i for i in np.argsort(s, kind="stable") if y[i] == 1 and s[i] <= t][:GALLERY_SIZE]
     rejects = [i for i in np.argsort(-s, kind="stable") if y[i] == 0 and s[i] > t][:GALLERY_SIZE]
@@ -186,12 +231,13 @@ def _gallery(out: Path, h: HoldoutResult, t: float) -> dict[str, list[dict]]:
         result[kind] = []
         for n, i in enumerate(idx, 1):
             stem = f"{kind}_{n:02d}"
-            files = {"image": f"gallery/{stem}_image.png", "overlay": f"gallery/{stem}_overlay.png"}
-            _to_uint8(h.images[i]).save(out / files["image"])
-            overlay_png(h.images[i], h.heatmaps[i], vmax).save(out / files["overlay"])
+            pictures = {"image": _to_uint8(h.images[i]), "heatmap": overlay_png(h.images[i], h.heatmaps[i], vmax)}
             if h.masks[i] is not None:
-                files["mask"] = f"gallery/{stem}_mask.png"
-                Image.fromarray(np.asarray(h.masks[i], dtype=np.uint8) * 255).save(out / files["mask"])
+                pictures["mask"] = Image.fromarray(np.asarray(h.masks[i], dtype=np.uint8) * 255)
+            files = {}
+            for column, picture in pictures.items():
+                files[column] = f"gallery/{stem}_{column}.png"
+                _large(picture).save(out / files[column])
             result[kind].append({"path": str(h.paths[i]), "class": h.classes[i], "score": float(s[i]), **files})
     return result
 
@@ -201,16 +247,16 @@ def _gallery(out: Path, h: HoldoutResult, t: float) -> dict[str, list[dict]]:
 _CSS = """body{font-family:system-ui,sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;color:#222}
 table{border-collapse:collapse;margin:1em 0}td,th{border:1px solid #ccc;padding:.3em .7em;text-align:left}
 th{background:#f3f3f3}.caution{background:#fff6e0;border-left:4px solid #e0a000;padding:.6em 1em}
-.plots img{max-width:48%;margin:.5%}figure{display:inline-block;margin:.4em;text-align:center}
-figure img{width:128px;height:128px;object-fit:contain;image-rendering:pixelated;border:1px solid #ddd}
-figcaption{font-size:.8em;max-width:400px;overflow-wrap:anywhere}"""
+.plots img{max-width:48%;margin:.5%}.warning{background:#fde8e8;border-left:4px solid #c00;padding:.6em 1em}
+.gallery img{width:128px;height:128px;object-fit:contain;image-rendering:pixelated;border:1px solid #ddd}
+.gallery td{vertical-align:middle;overflow-wrap:anywhere}"""
 
 
 def _e(x) -> str:
     return html.escape(str(x))
 
 
-def _rate_text(r: dict | None) -> str:
+def rate_text(r: dict | None) -> str:
     if r is None:
         return "n/a"
     return f"{100 * r['rate']:.1f} % ({r['k']} / {r['n']}; 95 % CI {100 * r['low']:.1f}–{100 * r['high']:.1f} %)"
@@ -227,15 +273,15 @@ def _rows(rows) -> str:
 def _headline(m: dict) -> str:
     th = m["threshold"]
     rows = [("Image AUROC", _num(m["image_auroc"])), ("Average precision", _num(m["average_precision"]))]
-    if m["pixel_auroc"] is not None:
+    if m["masks"] is not None:
         rows += [
-            ("Pixel AUROC", _num(m["pixel_auroc"])),
+            ("Pixel AUROC", f"{_num(m['pixel_auroc'])} ({mask_coverage(m)})"),
             (f"PRO (false-positive rate up to {100 * m['pro_max_fpr']:.0f} %)", _num(m["pro"])),
         ]
     rows += [
         ("Threshold", f"{th['value']:.4g} (method: {th['method']}, target {th['target']:g})"),
-        ("False-reject rate (good flagged)", _rate_text(m["false_reject"])),
-        ("Catch rate (defective flagged)", _rate_text(m["catch"])),
+        ("False-reject rate (good flagged)", rate_text(m["false_reject"])),
+        ("Catch rate (defective flagged)", rate_text(m["catch"])),
     ]
     rows += [("Images: good", m["n"]["good"]), ("Images: defective", m["n"]["defective"])]
     rows += [(f"Images: defective, {c}", n) for c, n in m["n"]["per_class"].items() if c != "good"]
@@ -244,13 +290,16 @@ def _headline(m: dict) -> str:
 
 def _confusion_table(m: dict, cells: list[list[int]]) -> str:
     fr, ca = m["false_reject"], m["catch"]
-    good = f"<tr><th>good</th><td>{cells[0][0]}</td><td>{cells[0][1]} — {_e(_rate_text(fr))}</td></tr>"
-    bad = f"<tr><th>defective</th><td>{cells[1][0]}</td><td>{cells[1][1]} — {_e(_rate_text(ca))}</td></tr>"
+    good = f"<tr><th>good</th><td>{cells[0][0]}</td><td>{cells[0][1]} — {_e(rate_text(fr))}</td></tr>"
+    bad = f"<tr><th>defective</th><td>{cells[1][0]}</td><td>{cells[1][1]} — {_e(rate_text(ca))}</td></tr>"
     return f"<table><tr><th>actual \\ verdict</th><th>pass</th><th>flag</th></tr>{good}{bad}</table>"
 
 
 def _gallery_html(g: dict[str, list[dict]]) -> str:
+    """One table per kind of miss: a row per image, columns image / heatmap / mask; each thumbnail is a link to
+    its large picture."""
     parts = []
+    head = "<tr><th>file</th><th>class</th><th>score</th>" + "".join(f"<th>{c}</th>" for c in GALLERY_COLUMNS)
     for kind, label in (
         ("escape", "Escapes: defective parts that passed (lowest scores first)"),
         ("false_reject", "False rejects: good parts that were flagged (highest scores first)"),
@@ -258,21 +307,39 @@ def _gallery_html(g: dict[str, list[dict]]) -> str:
         parts.append(f"<h3>{label}</h3>")
         if not g[kind]:
             parts.append("<p>None.</p>")
+            continue
+        rows = [head + "</tr>"]
         for it in g[kind]:
-            imgs = "".join(f'<img src="{_e(it[k])}" alt="{k}">' for k in ("image", "overlay", "mask") if k in it)
-            cap = f"{_e(Path(it['path']).name)} — {_e(it['class'])}, score {it['score']:.4g}"
-            parts.append(f'<figure title="{_e(it["path"])}">{imgs}<figcaption>{cap}</figcaption></figure>')
+            cells = "".join(_thumbnail(it.get(column), column) for column in GALLERY_COLUMNS)
+            name = f'<td title="{_e(it["path"])}">{_e(Path(it["path"]).name)}</td>'
+            rows.append(f"<tr>{name}<td>{_e(it['class'])}</td><td>score {it['score']:.4g}</td>{cells}</tr>")
+        parts.append(f'<table class="gallery">{"".join(rows)}</table>')
     return "\n".join(parts)
+
+
+def _thumbnail(src: str | None, column: str) -> str:
+    if src is None:
+        return "<td>none</td>"
+    return f'<td><a href="{_e(src)}" title="open large"><img src="{_e(src)}" alt="{column}"></a></td>'
+
+
+def _warnings_html(m: dict, skipped: list) -> str:
+    notes = [*m["warnings"]]
+    if skipped:
+        notes.append(f"{len(skipped)} unreadable images were skipped: " + "; ".join(f"{p}: {w}" for p, w in skipped))
+    return "".join(f'<p class="warning"><strong>Warning.</strong> {_e(w)}</p>' for w in notes)
 
 
 def write_report(
     out_dir: Path, holdout: HoldoutResult, choice: ThresholdChoice, *, title: str, model_info: dict
 ) -> Path:
     """Writes out_dir/index.html with its PNG plots and gallery beside it; returns the page's path. Scores:
-    higher = less like known-good; flagged when score > choice.value."""
+    higher = less like known-good; flagged when score > choice.value. `model_info`: rows of the Model table
+    (label: value), e.g. model id, revision, bundle sha256, the training and holdout folders."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     m = metrics_summary(holdout, choice)
+    written = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     y, s, t = np.asarray(holdout.labels), np.asarray(holdout.scores, dtype=np.float64), float(choice.value)
     cells = [[int(((y == c) & (s <= t)).sum()), int(((y == c) & (s > t)).sum())] for c in (0, 1)]
     plots = [_plot_hist(out, y, s, t), _plot_confusion(out, cells)]
@@ -281,12 +348,14 @@ def write_report(
     if m["per_class_catch"]:
         plots.append(_plot_per_class(out, m["per_class_catch"]))
     per_class = "".join(
-        f"<tr><th>{_e(c)}</th><td>{r['n']}</td><td>{_e(_rate_text(r))}</td></tr>"
+        f"<tr><th>{_e(c)}</th><td>{r['n']}</td><td>{_e(rate_text(r))}</td></tr>"
         for c, r in m["per_class_catch"].items()
     )
     body = [
         f"<h1>{_e(title)}</h1>",
+        f"<p>Written {_e(written)} by knowngood {_e(__version__)}.</p>",
         f'<p class="caution"><strong>Caution.</strong> {_e(CAUTION)}</p>',
+        _warnings_html(m, holdout.skipped),
         "<p>Anomaly score: higher means less like the known-good parts. A part is <b>flagged</b> when its score is "
         "above the threshold, otherwise it <b>passes</b>. Intervals are 95 % Clopper–Pearson.</p>",
         "<h2>Summary</h2>",
@@ -299,9 +368,11 @@ def write_report(
         "<h2>Plots</h2>",
         '<div class="plots">' + "".join(f'<img src="{p}" alt="{p}">' for p in plots) + "</div>",
         "<h2>Worst misses</h2>",
+        "<p>Click a picture to open it large.</p>",
         _gallery_html(_gallery(out, holdout, t)),
         "<h2>Model</h2>",
-        f"<table>{_rows(model_info.items())}</table>",
+        f"<table>{_rows([('Report written', written), ('Software', f'knowngood {__version__}'), *model_info.items()])}"
+        "</table>",
     ]
     page = out / "index.html"
     page.write_text(

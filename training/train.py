@@ -112,6 +112,27 @@ def train_bundle(
 MAX_TILES = 4000  # tiles per split: enough to cover a part's variation, bounded memory for multi-megapixel sets
 
 
+SCALE_NOTE_RATIO = 2.5  # native long side / working long side from which `scale_note` speaks
+SMALLEST_SEEN_PX = 2  # working-size px a defect needs to be seen at all (README, Limits)
+
+
+def scale_note(images: list, model: ModelConfig) -> str | None:
+    """A warning when the images are shrunk so far that small defects vanish (whole-image models only): the median
+    native long side against the working long side, and the smallest defect, in native px, still seen."""
+    if model.tile or not images:
+        return None
+    sides = sorted(max(im.shape[-2:]) for im in images)
+    native = sides[len(sides) // 2]
+    ratio = native / model.size
+    if ratio < SCALE_NOTE_RATIO:
+        return None
+    return (
+        f"the images are about {native} px on the long side and are seen at {model.size} px ({ratio:.1f}x smaller): "
+        f"a defect under about {SMALLEST_SEEN_PX * ratio:.0f} px in the image may be missed; --size "
+        f"{min(1024, 2 * model.size)} or more, or --tile {model.size} (tiles at the camera's own scale), sees it"
+    )
+
+
 def _with_working_shape(model: ModelConfig, images: list) -> ModelConfig:
     if model.tile:
         return dataclasses.replace(model, height=0)
@@ -178,4 +199,5 @@ def _manifest(good, model, train, result, choice, counts, terms) -> dict:
             "set_at": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds"),
         },
         "fingerprints": {"training": good.fingerprint(), "holdout": None},
+        "folders": {"training": None if good.folder is None else str(good.folder), "holdout": None},
     }

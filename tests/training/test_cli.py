@@ -1,18 +1,24 @@
 """The `knowngood` command end to end on a small rendering of the demo parts: train, tune, inspect, errors."""
 
 import json
+import shutil
 import subprocess
 import sys
 from pathlib import Path
 
 import numpy as np
 import pytest
+import torch
 from PIL import Image
 
 from demo_parts import render_scenario
 from training import bundle
 from training.cli import main
 from training.commands import heatmap_names
+from training.config import ModelConfig
+from training.data import MIN_SIDE, min_side_for
+from training.detector import Detector
+from training.report import rate_text
 
 STEPS = "12"
 
@@ -34,12 +40,13 @@ def trained(scenario, tmp_path_factory):
     return model
 
 
-def test_train_writes_a_self_describing_bundle(trained):
+def test_train_writes_a_self_describing_bundle(trained, scenario):
     det, frechet = bundle.load(trained)
     m = det.manifest
     assert m["training"]["steps_done"] == int(STEPS) and m["preprocessing"]["size"] == 64
     assert m["threshold"]["method"].startswith("conformal") and np.isfinite(det.threshold)
     assert m["fingerprints"]["training"] and m["score"]["direction"].startswith("higher")
+    assert m["folders"]["training"] == str(scenario / "train" / "good")  # what the report names
     assert not trained.with_name(trained.name + ".ckpt").exists()  # the resume checkpoint is cleaned up
 
 
@@ -89,6 +96,7 @@ def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, caps
             str(report),
             "-o",
             str(out),
+            "--json",
         ]
     )
     assert code == 0
@@ -97,20 +105,27 @@ def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, caps
     assert det.manifest["threshold"]["method"] == summary["threshold"]["method"]
     assert det.threshold == pytest.approx(summary["threshold"]["value"])
     assert summary["catch"]["rate"] >= 0.5 and summary["pixel_auroc"] is not None
+    assert summary["masks"] == {"with_mask": 10, "defective": 10}  # every defective image has its mask
+    assert (summary["model_id"], summary["revision"]) == (det.model_id, det.revision)
+    assert det.revision != bundle.load(trained)[0].revision  # a new threshold is a new revision of one model
     assert (report / "index.html").exists() and (report / "roc.png").exists()
-    assert "synthetic-defect image AUROC" in (report / "index.html").read_text()  # the chosen terms and why
+    page = (report / "index.html").read_text()
+    assert "synthetic-defect image AUROC" in page  # the chosen terms and why
+    assert f"{STEPS} steps in " in page and str(scenario / "train" / "good") in page  # how it was trained, on what
     assert det.manifest["fingerprints"]["holdout"]
 
 
 def test_inspect_json_and_heatmaps(trained, scenario, tmp_path, capsys):
     folder = scenario / "holdout" / "defective"  # one folder per defect class, each numbered from 0000.png
+    det = bundle.load(trained)[0]
     code = main(["inspect", str(trained), str(folder), "--json", "--heatmaps", str(tmp_path)])
     lines = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
     images = list(folder.rglob("*.png"))
     assert code == 0 and len(lines) == len(images) and len({p.stem for p in images}) < len(images)
     for row in lines:
-        assert set(row) == {"image", "score", "threshold", "verdict", "heatmap", "model_id", "time"}
-        assert row["model_id"] == bundle.load(trained)[0].model_id  # a saved line traces to its model
+        assert set(row) == {"image", "score", "threshold", "verdict", "heatmap", "model_id", "revision", "time"}
+        # a saved line traces to its model and to the threshold (revision) that made the verdict
+        assert (row["model_id"], row["revision"]) == (det.model_id, det.revision)
         assert row["verdict"] == ("flag" if row["score"] > row["threshold"] else "pass")
     overlays = {Path(row["heatmap"]) for row in lines}
     assert len(overlays) == len(lines)  # shared stems do not overwrite each other
@@ -146,7 +161,7 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
         ["inspect", str(trained), str(broken)],
         ["inspect", str(tmp_path / "missing.kgm"), str(broken)],
         ["train", str(tmp_path / "nowhere"), "-o", str(tmp_path / "m.kgm")],
-        ["tune", str(broken), "--good", str(tmp_path), "--defective", str(tmp_path)],
+        ["tune", str(broken), "--good", str(tmp_path), "--defective", str(tmp_path), "--in-place"],
         # mistakes refused by name before any work: non-positive budgets, an output folder that is not there,
         # --heatmaps pointing at a file
         ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--minutes", "-1"],
@@ -175,3 +190,117 @@ def test_inspect_json_into_a_closed_pipe_ends_quietly(trained, scenario):
     cmd = f"{sys.executable} -m training.cli inspect {trained} {folder} --json --batch 1 | head -n 1"
     proc = subprocess.run(["bash", "-o", "pipefail", "-c", cmd], capture_output=True, text=True)
     assert len(proc.stdout.splitlines()) == 1 and "Traceback" not in proc.stderr and "BrokenPipe" not in proc.stderr
+
+
+def _run(*args: str) -> subprocess.CompletedProcess:
+    return subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True)
+
+
+def test_tune_never_rewrites_the_model_unasked(trained, scenario, tmp_path, capsys):
+    h = scenario / "holdout"
+    holdout = ["--good", str(h / "good"), "--defective", str(h / "defective")]
+    before = trained.read_bytes()
+    proc = _run("tune", str(trained), *holdout)
+    lines = proc.stderr.strip().splitlines()
+    assert proc.returncode == 2 and len(lines) == 1 and lines[0].startswith("knowngood: error:")
+    assert "-o OUT" in lines[0] and "--in-place" in lines[0]
+    assert trained.read_bytes() == before
+    # --in-place rewrites the file it is given (a copy here) and prints a short summary a person can read
+    copy = tmp_path / "copy.kgm"
+    copy.write_bytes(before)
+    assert main(["tune", str(copy), *holdout, "--in-place", "--target-false-reject", "0.2"]) == 0
+    out = capsys.readouterr().out
+    det = bundle.load(copy)[0]
+    th = det.manifest["threshold"]
+    assert th["set_by"] == "tune" and det.threshold != bundle.load(trained)[0].threshold
+    lines = out.strip().splitlines()
+    assert lines[0].startswith(f"threshold {det.threshold:.4g} for a false-reject rate of at most 20 %")
+    assert rate_text(th["false_reject"]) in lines[1] and "false-reject rate" in lines[1]
+    assert rate_text(th["catch"]) in lines[2] and "catch rate" in lines[2]
+    assert "image AUROC" in lines[3] and "pixel AUROC" not in lines[3]  # no masks given
+    assert (
+        lines[4] == f"wrote {copy} (model {det.model_id}, revision {det.revision}); no report (--report DIR writes one)"
+    )
+    assert not out.lstrip().startswith("{")  # --json prints the JSON instead
+
+
+def test_tune_warns_when_good_and_defective_look_swapped(trained, scenario, tmp_path, capsys):
+    h = scenario / "holdout"
+    results = {}
+    for order, (good, bad) in {"right": ("good", "defective"), "swapped": ("defective", "good")}.items():
+        report = tmp_path / order
+        args = ["tune", str(trained), "--good", str(h / good), "--defective", str(h / bad), "--report", str(report)]
+        assert main([*args, "-o", str(tmp_path / f"{order}.kgm"), "--json"]) == 0
+        captured = capsys.readouterr()
+        summary = json.loads(captured.out)
+        warned = "knowngood: warning: image AUROC" in captured.err and "swapped" in captured.err
+        in_report = "probably swapped" in (report / "index.html").read_text()
+        assert warned == in_report == (summary["image_auroc"] < 0.5), (order, summary["image_auroc"])
+        results[order] = summary["image_auroc"]
+    assert results["right"] == pytest.approx(1 - results["swapped"])  # swapping the labels mirrors the AUROC
+    assert min(results.values()) < 0.5  # so one of the two runs did warn
+
+
+def test_tune_says_how_many_defective_images_had_a_mask(trained, scenario, tmp_path, capsys):
+    h = scenario / "holdout"
+    masks = tmp_path / "masks"
+    for src in sorted((h / "masks").rglob("*.png"))[:3]:  # 3 of the 10 defective images get their mask
+        dest = masks / src.relative_to(h / "masks")
+        dest.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy(src, dest)
+    report = tmp_path / "report"
+    args = ["tune", str(trained), "--good", str(h / "good"), "--defective", str(h / "defective")]
+    assert main([*args, "--masks", str(masks), "--report", str(report), "-o", str(tmp_path / "t.kgm")]) == 0
+    captured = capsys.readouterr()
+    assert "(from masks of 3 of 10 defective images)" in captured.out
+    warning = [line for line in captured.err.splitlines() if "masks" in line]
+    assert len(warning) == 1 and warning[0].startswith("knowngood: warning:")
+    assert "from masks of 3 of 10 defective images, fewer than half" in warning[0]
+    page = (report / "index.html").read_text()
+    assert "from masks of 3 of 10 defective images, fewer than half" in page
+    assert "(from masks of 3 of 10 defective images)" in page
+
+
+def test_skipped_images_are_named_once_and_empty_holdouts_name_the_option(trained, scenario, tmp_path):
+    broken_dir = tmp_path / "with_broken"
+    shutil.copytree(scenario / "holdout" / "good", broken_dir)
+    broken = broken_dir / "zz_broken.png"
+    broken.write_bytes(b"\x89PNG\r\n\x1a\n truncated")
+    h = scenario / "holdout"
+    for args in (
+        ["inspect", str(trained), str(broken_dir), "--skip-bad"],
+        ["tune", str(trained), "--good", str(broken_dir), "--defective", str(h / "defective"), "-o",
+         str(tmp_path / "t.kgm"), "--skip-bad"],
+        ["train", str(broken_dir), "-o", str(tmp_path / "m.kgm"), "--skip-bad"],  # stops later: too few images
+    ):  # fmt: skip
+        proc = _run(*args)
+        skipped = [line for line in proc.stderr.splitlines() if line.startswith("knowngood: skipped")]
+        assert len(skipped) == 1 and skipped[0].count(str(broken)) == 1, proc.stderr
+        assert "not a readable image" in skipped[0]
+    assert proc.returncode == 2  # train: 8 readable images are too few
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    for option, good, bad in (("--defective", h / "good", empty), ("--good", empty, h / "defective")):
+        proc = _run("tune", str(trained), "--good", str(good), "--defective", str(bad), "-o", str(tmp_path / "e.kgm"))
+        lines = proc.stderr.strip().splitlines()
+        assert proc.returncode == 2 and len(lines) == 1 and f"{option} {empty}: no readable images" in lines[0]
+
+
+def test_inspect_holds_images_to_the_models_smallest_side_as_the_service_does(tmp_path):
+    """One rule for both (`training.data.min_side_for`): a quarter of the model's working size, at least
+    MIN_SIDE. A 128 px model refuses a 24 px image the 64 px model above would take."""
+    torch.manual_seed(0)
+    cfg = ModelConfig(size=128, channels=1, width=8, z_channels=4, perceptual=0, memory=0, adversarial=0)
+    graph = bundle.new_graph(cfg)
+    graph.fit_standardisation(torch.rand(4, 1, 128, 128) * 0.2 + 0.4)
+    model = tmp_path / "m128.kgm"
+    manifest = {"model": {**cfg.__dict__}, "threshold": {"method": "fixed", "value": 3.0}}
+    bundle.save(Detector(cfg=cfg, graph=graph, threshold=3.0, manifest=manifest), {}, model)
+    assert min_side_for(128) == 32 and min_side_for(64) == MIN_SIDE == 16
+    for side, code in ((24, 2), (32, 0)):
+        image = tmp_path / f"{side}.png"
+        Image.new("L", (side, side), 128).save(image)
+        proc = _run("inspect", str(model), str(image))
+        assert proc.returncode == code, proc.stderr
+        if code:
+            assert "each side must be at least 32" in proc.stderr and f"{side}.png" in proc.stderr

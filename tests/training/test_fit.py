@@ -89,3 +89,28 @@ def test_split_is_disjoint_and_deterministic():
     assert all(np.array_equal(p, q) for p, q in zip(a, b))
     assert sum(len(p) for p in a) == 100 and len(set(np.concatenate(a))) == 100
     assert len(a[1]) + len(a[2]) == 25
+
+
+DEVICES = ["cpu"] + (["cuda"] if torch.cuda.is_available() else [])
+
+
+@pytest.mark.parametrize("device", DEVICES)
+def test_fit_runs_on_every_device_present(device):
+    # evaluation reads the critic's features into NumPy: from an accelerator they must come back to the host first
+    x, v = _data(), _data(8, seed=1)
+    r = fit(x, v, TINY, _tcfg(steps=3, eval_every=2), progress=False, device=device)
+    assert r.steps_done == 3 and [h["step"] for h in r.history] == [2, 3]
+    assert all(np.isfinite(h["val_rec"]) and np.isfinite(h["fd"]) for h in r.history)
+    assert all(p.device.type == "cpu" for p in r.generator.parameters())  # handed back on the CPU, as documented
+
+
+def test_progress_bar_goes_to_stderr_and_quiet_means_silent(capsys):
+    # stderr is not a terminal under pytest: the bar must still work there, and never touch stdout
+    x, v = _data(), _data(8, seed=1)
+    fit(x, v, TINY, _tcfg(steps=10), progress=True)
+    out, err = capsys.readouterr()
+    assert out == ""
+    last = err.replace("\r", "\n").strip().splitlines()[-1]
+    assert last.startswith("100%|") and "step 10" in last and "val_rec" in last and "fd_floor" in last
+    fit(x, v, TINY, _tcfg(steps=2), progress=False)
+    assert capsys.readouterr() == ("", "")

@@ -1,16 +1,23 @@
 """The tuning report and heatmap overlays: files written, headline numbers and caution present, PNGs valid,
 the page self-contained, and the summary's numbers equal to the metrics computed directly."""
 
+import dataclasses
+import datetime as dt
+import hashlib
 import html
 import io
 import json
 import re
+from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
 import pytest
 from PIL import Image
 
+from training import __version__, bundle
+from training.cli import main
+from training.data import fingerprint
 from training.heatmap import MAX_ALPHA, heatmap_png_bytes, overlay_png, overlay_rgb
 from training.metrics import image_auroc, pixel_auroc, pro_score
 from training.report import CAUTION, HoldoutResult, metrics_summary, write_report
@@ -75,8 +82,8 @@ def test_report_writes_page_plots_and_gallery(tmp_path):
     escapes = (h.labels == 1) & (h.scores <= choice.value)
     rejects = (h.labels == 0) & (h.scores > choice.value)
     assert escapes.any() and rejects.any()  # the fixture really exercises both galleries
-    assert sum(s.startswith("gallery/escape_") and s.endswith("_overlay.png") for s in srcs) == min(8, escapes.sum())
-    assert sum(s.startswith("gallery/false_reject_") and s.endswith("_overlay.png") for s in srcs) == min(
+    assert sum(s.startswith("gallery/escape_") and s.endswith("_heatmap.png") for s in srcs) == min(8, escapes.sum())
+    assert sum(s.startswith("gallery/false_reject_") and s.endswith("_heatmap.png") for s in srcs) == min(
         8, rejects.sum()
     )
     for src in srcs:
@@ -91,11 +98,11 @@ def test_gallery_shows_the_lowest_scoring_escape_first(tmp_path):
     text = write_report(tmp_path, h, choice, title="t", model_info={}).read_text(encoding="utf-8")
     escapes = np.flatnonzero((h.labels == 1) & (h.scores <= choice.value))
     order = escapes[np.argsort(h.scores[escapes])]  # lowest score (the worst escape) first
-    figures = re.findall(r"<figure[^>]*>.*?</figure>", text)
-    shown = [f for f in figures if "gallery/escape_" in f]
+    rows = re.findall(r"<tr>.*?</tr>", text)
+    shown = [row for row in rows if "gallery/escape_" in row]
     assert len(shown) == len(order) == 2
-    for fig, i in zip(shown, order, strict=True):
-        assert h.paths[i].name in fig and f"score {h.scores[i]:.4g}" in fig
+    for row, i in zip(shown, order, strict=True):
+        assert h.paths[i].name in row and f"score {h.scores[i]:.4g}" in row
 
 
 def test_summary_equals_direct_metrics_and_is_json():
@@ -184,3 +191,138 @@ def test_report_of_good_images_only_marks_missing_metrics(tmp_path):
     text = write_report(tmp_path, good, choice, title="t", model_info={}).read_text(encoding="utf-8")
     assert "<th>Image AUROC</th><td>n/a</td>" in text and "roc.png" not in text
     assert "conformal" in text
+
+
+# ---------------------------------------------------------------- warnings, model table and gallery, parsed
+
+
+class _Page(HTMLParser):
+    """What a reader sees of a report page: table rows (header cell -> data cell), gallery tables' column heads,
+    links with the pictures inside them, and the warning paragraphs."""
+
+    def __init__(self, text: str):
+        super().__init__()
+        self.rows: dict[str, str] = {}
+        self.gallery_heads: list[list[str]] = []
+        self.links: list[tuple[str, str]] = []  # (href, src of the img inside)
+        self.warnings: list[str] = []
+        self._cell: list[str] | None = None
+        self._row: list[tuple[str, str]] = []
+        self._href: str | None = None
+        self._in_gallery = False
+        self._warning: list[str] | None = None
+        self.feed(text)
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "table":
+            self._in_gallery = a.get("class") == "gallery"
+            if self._in_gallery:
+                self.gallery_heads.append([])
+        elif tag == "tr":
+            self._row = []
+        elif tag in ("th", "td"):
+            self._cell = []
+        elif tag == "a":
+            self._href = a.get("href")
+        elif tag == "img" and self._href is not None:
+            self.links.append((self._href, a.get("src")))
+        elif tag == "p" and a.get("class") == "warning":
+            self._warning = []
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell.append(data)
+        if self._warning is not None:
+            self._warning.append(data)
+
+    def handle_endtag(self, tag):
+        if tag in ("th", "td") and self._cell is not None:
+            self._row.append((tag, "".join(self._cell).strip()))
+            self._cell = None
+        elif tag == "tr":
+            if len(self._row) == 2 and self._row[0][0] == "th" and self._row[1][0] == "td":
+                self.rows[self._row[0][1]] = self._row[1][1]
+            if self._in_gallery and all(kind == "th" for kind, _ in self._row):
+                self.gallery_heads[-1] = [text for _, text in self._row]
+        elif tag == "a":
+            self._href = None
+        elif tag == "p" and self._warning is not None:
+            self.warnings.append("".join(self._warning).strip())
+            self._warning = None
+
+
+def test_summary_warns_about_a_swapped_holdout_and_few_masks(tmp_path):
+    h = _holdout()
+    choice = threshold_for_false_reject(h.scores[h.labels == 0], h.scores[h.labels == 1], 0.1)
+    m = metrics_summary(h, choice)
+    assert m["masks"] == {"with_mask": 7, "defective": 8} and m["warnings"] == []  # 7 of 8: nothing doubtful
+    h.scores = -h.scores  # defective now score lower than good: as if the folders were swapped
+    h.masks = [mask if i < 15 else None for i, mask in enumerate(h.masks)]  # masks for 3 of the 8 defective
+    m = metrics_summary(h, threshold_for_false_reject(h.scores[h.labels == 0], h.scores[h.labels == 1], 0.1))
+    assert m["image_auroc"] < 0.5 and m["masks"] == {"with_mask": 3, "defective": 8}
+    assert len(m["warnings"]) == 2
+    assert "below 0.5" in m["warnings"][0] and "swapped" in m["warnings"][0]
+    assert "from masks of 3 of 8 defective images, fewer than half" in m["warnings"][1]
+    page = _Page(write_report(tmp_path, h, choice, title="t", model_info={}).read_text(encoding="utf-8"))
+    assert [w.removeprefix("Warning. ") for w in page.warnings] == m["warnings"]
+    assert page.rows["Pixel AUROC"].endswith("(from masks of 3 of 8 defective images)")
+
+
+def _png(path: Path, image: np.ndarray) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    Image.fromarray((np.clip(image[0], 0, 1) * 255).round().astype(np.uint8)).save(path)
+
+
+def test_tune_report_names_its_model_data_and_software(tiny_bundle, tiny_good_images, tmp_path):
+    # a bundle as train writes it: steps, time and the training folder in its manifest
+    det, frechet = bundle.load(tiny_bundle)
+    manifest = {
+        **det.manifest,
+        "training": {"steps_done": 7, "seconds": 12.3},
+        "folders": {"training": "line3/good", "holdout": None},
+        "fingerprints": {"training": "ab" * 32, "holdout": None},
+    }
+    model = tmp_path / "trained.kgm"
+    bundle.save(dataclasses.replace(det, manifest=manifest), frechet, model)
+    good, bad, masks = tmp_path / "holdout" / "good", tmp_path / "holdout" / "defective", tmp_path / "holdout" / "masks"
+    for i, img in enumerate(tiny_good_images[12:]):
+        _png(good / f"{i:04d}.png", img)
+    for i, img in enumerate(tiny_good_images[:4]):
+        dent = img.copy()
+        dent[:, 4 + 2 * i : 12 + 2 * i, 6:14] = 1.0  # a bright square the model has never seen
+        _png(bad / "dent" / f"{i:04d}.png", dent)
+    mask = np.zeros((1, 32, 32), np.float32)
+    mask[:, 4:12, 6:14] = 1
+    _png(masks / "dent" / "0000.png", mask)  # one mask for four defective images
+    out, report = tmp_path / "tuned.kgm", tmp_path / "report"
+    args = ["tune", str(model), "--good", str(good), "--defective", str(bad), "--masks", str(masks)]
+    assert main([*args, "--target-catch", "0.5", "--report", str(report), "-o", str(out)]) == 0
+
+    page = _Page((report / "index.html").read_text(encoding="utf-8"))
+    tuned = bundle.load(out)[0]
+    rows = page.rows
+    written = dt.datetime.strptime(rows["Report written"], "%Y-%m-%d %H:%M UTC").replace(tzinfo=dt.timezone.utc)
+    assert abs(dt.datetime.now(dt.timezone.utc) - written) < dt.timedelta(minutes=10)
+    assert rows["Software"] == f"knowngood {__version__}"
+    assert rows["Model id"] == tuned.model_id == det.model_id  # the weights did not change
+    assert rows["Revision"] == tuned.revision != det.revision  # the threshold did
+    assert rows["Bundle sha256"] == hashlib.sha256(out.read_bytes()).hexdigest()
+    assert rows["Training images"] == f"line3/good (fingerprint {'ab' * 32})"
+    assert rows["Training"] == "7 steps in 12 s"
+    holdout_print = fingerprint(sorted(good.glob("*.png")) + sorted(bad.rglob("*.png")))
+    assert rows["Holdout images"] == f"good {good}, defective {bad} (fingerprint {holdout_print})"
+    assert rows["Holdout masks"] == str(masks)
+    assert "Terms" in rows
+    assert rows["Pixel AUROC"].endswith("(from masks of 1 of 4 defective images)")
+    assert any("fewer than half" in w for w in page.warnings)
+
+    # the gallery: one table per kind of miss with columns image / heatmap / mask, every thumbnail a link to a
+    # picture larger than the 128 px it is shown at
+    assert page.gallery_heads and all(head[-3:] == ["image", "heatmap", "mask"] for head in page.gallery_heads)
+    gallery = [(href, src) for href, src in page.links if src.startswith("gallery/")]
+    assert gallery  # a 50 % catch target lets the lowest-scoring defective images pass: escapes to show
+    for href, src in gallery:
+        assert href == src
+        with Image.open(report / href) as picture:
+            assert max(picture.size) >= 512 > 128  # the 32 px images, enlarged 16x

@@ -12,13 +12,14 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+from PIL import Image
 
 from demo_parts import render_large
 from demo_parts.scenario import image_rng
 from training.config import ModelConfig, TrainConfig
 from training.data import ImageSet
 from training.detector import tile_boxes
-from training.train import train_bundle
+from training.train import scale_note, train_bundle
 
 SIDE = 512
 TILE = 128
@@ -79,3 +80,22 @@ def test_a_few_pixel_defect_is_found_at_full_resolution_and_missed_at_128_px(mod
         found[name] = sum(float(r.heatmap[m].max()) > reference for r, (_, m) in zip(results, cracks))
     # measured: tiled 4 of 6, whole image at 128 px 0 of 6
     assert found["tiled"] >= 3 and found["whole"] <= 1, found
+
+
+def test_train_warns_when_small_defects_would_vanish(tmp_path, capsys):
+    """`train` says so when whole images are shrunk far below the camera's scale (a 512 px image at 128 px: a
+    2-px feature at the working size is 8 native px), and names the options that keep the scale."""
+    from training.cli import main
+
+    good = tmp_path / "good"
+    good.mkdir()
+    rng = np.random.default_rng(0)
+    for i in range(12):
+        Image.fromarray(rng.integers(90, 160, (SIDE, SIDE), dtype=np.uint8)).save(good / f"{i:02d}.png")
+    assert main(["train", str(good), "-o", str(tmp_path / "m.kgm"), "--steps", "2", "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert f"about {SIDE} px on the long side and are seen at 128 px (4.0x smaller)" in err
+    assert "--tile 128" in err and "--size 256" in err
+    # at the camera's scale (tiled) or at a working size near the native one, nothing to say
+    assert scale_note([np.zeros((1, SIDE, SIDE), np.float32)], ModelConfig(tile=TILE)) is None
+    assert scale_note([np.zeros((1, SIDE, SIDE), np.float32)], ModelConfig(size=256)) is None
