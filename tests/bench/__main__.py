@@ -41,7 +41,12 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         metavar="NAME",
         help=f"dataset to run (repeatable); one of {', '.join(datasets.NAMES)}",
     )
-    p.add_argument("--minutes", type=float, default=None, help="knowngood training budget per dataset (2.5, as the demo; quick 0.5)")
+    p.add_argument(
+        "--minutes",
+        type=float,
+        default=None,
+        help="knowngood training budget per dataset (2.5; quick 0.5)",
+    )
     p.add_argument("--cache", type=Path, default=Path("bench_out/cache"), help="where the demo parts are rendered")
     p.add_argument(
         "--skip",
