@@ -16,8 +16,8 @@ demo: $(STAMP)
 	$(BIN)/knowngood demo --out demo_out
 
 lint: $(STAMP)
-	$(BIN)/ruff check training service demo_parts tests
-	$(BIN)/ruff format --check training service demo_parts tests
+	$(BIN)/ruff check knowngood training service demo_parts tests
+	$(BIN)/ruff format --check knowngood training service demo_parts tests
 
 test: $(STAMP) lint
 	$(BIN)/python -m pytest -q

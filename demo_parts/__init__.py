@@ -7,7 +7,7 @@ its good twin (same rng state) plus one defect, so it differs from that twin onl
 its mask.
 """
 
-from demo_parts.render import DEFECT_KINDS, PART_KINDS, render_defective, render_good, render_large
-from demo_parts.scenario import render_scenario
+from knowngood.demo_parts.render import DEFECT_KINDS, PART_KINDS, render_defective, render_good, render_large
+from knowngood.demo_parts.scenario import render_scenario
 
 __all__ = ["DEFECT_KINDS", "PART_KINDS", "render_defective", "render_good", "render_large", "render_scenario"]

@@ -6,7 +6,7 @@ import argparse
 import sys
 from pathlib import Path
 
-from demo_parts.scenario import render_scenario
+from knowngood.demo_parts.scenario import render_scenario
 
 
 def main(argv: list[str] | None = None) -> int:

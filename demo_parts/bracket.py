@@ -11,8 +11,7 @@ import functools
 from dataclasses import dataclass, field
 
 import numpy as np
-
-from demo_parts import fields as f
+from knowngood.demo_parts import fields as f
 
 # Nominal geometry as fractions of the image side: the same product every time, only the pose varies.
 HALF_W, HALF_H, CORNER = 0.40, 0.28, 0.07

@@ -9,11 +9,10 @@ under 2 px or a scratch of 7 % contrast is below what that resolution can show, 
 from __future__ import annotations
 
 import numpy as np
+from knowngood.demo_parts import fields as f
+from knowngood.demo_parts.bracket import BracketScene, outer_sd, surface_mask
+from knowngood.demo_parts.bracket import holes_sd as _holes_sd
 from scipy import ndimage
-
-from demo_parts import fields as f
-from demo_parts.bracket import BracketScene, outer_sd, surface_mask
-from demo_parts.bracket import holes_sd as _holes_sd
 
 
 def surface_point(scene: BracketScene, rng: np.random.Generator, clearance: float):

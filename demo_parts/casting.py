@@ -14,9 +14,8 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from knowngood.demo_parts import fields as f
 from scipy import ndimage
-
-from demo_parts import fields as f
 
 REFERENCE_SIZE = 128  # the image side at which sizes below are given in pixels
 GRAIN = (3.0, 4.0)  # mean diameter of the blasted grains, px at the reference scale

@@ -9,10 +9,9 @@ one pixel wide and 15 % darker, a shallow pore of 1.3 px radius), the strongest 
 from __future__ import annotations
 
 import numpy as np
+from knowngood.demo_parts import fields as f
+from knowngood.demo_parts.casting import CastingScene
 from scipy import ndimage
-
-from demo_parts import fields as f
-from demo_parts.casting import CastingScene
 
 
 def _window(scene: CastingScene, cx: float, cy: float, reach: float):

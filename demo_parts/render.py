@@ -6,9 +6,8 @@ from dataclasses import dataclass
 from types import ModuleType
 
 import numpy as np
-
-from demo_parts import bracket, bracket_defects, casting, casting_defects, weave, weave_defects
-from demo_parts.fields import to_uint8
+from knowngood.demo_parts import bracket, bracket_defects, casting, casting_defects, weave, weave_defects
+from knowngood.demo_parts.fields import to_uint8
 
 _KINDS: dict[str, tuple[ModuleType, dict]] = {
     "bracket": (bracket, bracket_defects.DEFECTS),

@@ -6,9 +6,8 @@ import re
 from pathlib import Path
 
 import numpy as np
+from knowngood.demo_parts.render import DEFECT_KINDS, PART_KINDS, render
 from PIL import Image
-
-from demo_parts.render import DEFECT_KINDS, PART_KINDS, render
 
 # Seeds are keyed by what an image is, not by how many came before it, so changing one count never
 # changes the other images.

@@ -10,8 +10,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-
-from demo_parts import fields as f
+from knowngood.demo_parts import fields as f
 
 PITCH = 7.0  # px per thread at 128 px
 WARP_RGB = np.array([0.30, 0.42, 0.60])

@@ -7,10 +7,9 @@ thread rather than a straight line. Strength ranges start low on purpose: the we
 from __future__ import annotations
 
 import numpy as np
+from knowngood.demo_parts import fields as f
+from knowngood.demo_parts.weave import WeaveScene, thread_geometry, thread_shade
 from scipy import ndimage
-
-from demo_parts import fields as f
-from demo_parts.weave import WeaveScene, thread_geometry, thread_shade
 
 STAIN_RGB = (
     np.array([0.55, 0.42, 0.25]),  # machine oil

@@ -8,7 +8,7 @@ import threading
 from collections.abc import Iterator
 from contextlib import contextmanager
 
-from service.problems import Problem
+from knowngood.service.problems import Problem
 
 RETRY_AFTER_S = 1
 

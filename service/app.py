@@ -9,22 +9,21 @@ from contextlib import asynccontextmanager
 import torch
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
+from knowngood.service import docs, problems, restore
+from knowngood.service.admission import Stage
+from knowngood.service.deps import ServiceState, check_admin
+from knowngood.service.files import FileStore
+from knowngood.service.limits import BodyGate
+from knowngood.service.metrics import Metrics, MetricsMiddleware
+from knowngood.service.model_slot import ModelSlot, model_event
+from knowngood.service.problems import CrashGuard
+from knowngood.service.routes import inspections, ops
+from knowngood.service.routes import model as model_routes
+from knowngood.service.settings import Settings, get_settings
+from knowngood.service.store import SqliteStore
+from knowngood.training import __version__
+from knowngood.training.errors import KnowngoodError
 from starlette.concurrency import run_in_threadpool
-
-from service import docs, problems, restore
-from service.admission import Stage
-from service.deps import ServiceState, check_admin
-from service.files import FileStore
-from service.limits import BodyGate
-from service.metrics import Metrics, MetricsMiddleware
-from service.model_slot import ModelSlot, model_event
-from service.problems import CrashGuard
-from service.routes import inspections, ops
-from service.routes import model as model_routes
-from service.settings import Settings, get_settings
-from service.store import SqliteStore
-from training import __version__
-from training.errors import KnowngoodError
 
 log = logging.getLogger("knowngood.service")
 DESCRIPTION = """Visual inspection from known-good images. A part is **flagged** when its anomaly score (higher = less

@@ -26,9 +26,8 @@ def register(subparsers) -> None:
 
 
 def _settings(args):
+    from knowngood.service.settings import Settings
     from pydantic import ValidationError
-
-    from service.settings import Settings
 
     flags = {"model_path": args.model, "host": args.host, "port": args.port, "db": args.db, "data_dir": args.data_dir}
     try:
@@ -46,8 +45,7 @@ def serve(args) -> int:
     if settings is None:
         return 2
     import uvicorn
-
-    from service.app import create_app
+    from knowngood.service.app import create_app
 
     logging.basicConfig(level=settings.log_level.upper(), format="%(levelname)-9s %(message)s")
     app = create_app(settings)

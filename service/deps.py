@@ -12,14 +12,13 @@ from typing import Annotated
 from fastapi import Depends, Query, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
-
-from service.admission import Stage
-from service.files import FileStore
-from service.metrics import Metrics
-from service.model_slot import LoadedModel, ModelSlot
-from service.problems import Problem
-from service.settings import Caller, Settings, get_settings
-from service.store import SqliteStore, to_iso
+from knowngood.service.admission import Stage
+from knowngood.service.files import FileStore
+from knowngood.service.metrics import Metrics
+from knowngood.service.model_slot import LoadedModel, ModelSlot
+from knowngood.service.problems import Problem
+from knowngood.service.settings import Caller, Settings, get_settings
+from knowngood.service.store import SqliteStore, to_iso
 
 
 @dataclass

@@ -14,8 +14,7 @@ from dataclasses import dataclass
 from typing import Literal, get_args
 
 import numpy as np
-
-from training.frechet import frechet_distance, gaussian_stats, reference_distance
+from knowngood.training.frechet import frechet_distance, gaussian_stats, reference_distance
 
 Status = Literal["ok", "drifting", "not_enough_images", "no_reference"]
 STATES: tuple[str, ...] = get_args(Status)  # every state an assessment can be in (/metrics shows each)

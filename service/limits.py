@@ -4,10 +4,9 @@ cannot make the server read, spool or hold anything."""
 
 from __future__ import annotations
 
+from knowngood.service.problems import Problem, problem_response
 from starlette.datastructures import Headers
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
-
-from service.problems import Problem, problem_response
 
 TITLE = "Upload too large"
 

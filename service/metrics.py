@@ -10,12 +10,11 @@ import time
 from collections import deque
 
 import numpy as np
+from knowngood.service.drift import STATES, DriftReport
 from prometheus_client import CollectorRegistry, Counter, Histogram, disable_created_metrics, generate_latest
 from prometheus_client.exposition import CONTENT_TYPE_PLAIN_0_0_4
 from prometheus_client.metrics_core import GaugeMetricFamily, Metric
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
-
-from service.drift import STATES, DriftReport
 
 CONTENT_TYPE = CONTENT_TYPE_PLAIN_0_0_4
 BUCKETS = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0, 10.0)  # seconds

@@ -9,14 +9,13 @@ import threading
 from dataclasses import dataclass
 
 import numpy as np
-
-from service.drift import DriftMonitor
-from service.problems import Problem
-from service.settings import Settings
-from service.store import ModelEvent, Serving, utc_now
-from training import bundle
-from training.detector import Detector
-from training.errors import BadBundle, ModelNotReady
+from knowngood.service.drift import DriftMonitor
+from knowngood.service.problems import Problem
+from knowngood.service.settings import Settings
+from knowngood.service.store import ModelEvent, Serving, utc_now
+from knowngood.training import bundle
+from knowngood.training.detector import Detector
+from knowngood.training.errors import BadBundle, ModelNotReady
 
 
 @dataclass(frozen=True)

@@ -7,8 +7,7 @@ import functools
 import numpy as np
 import torch
 import torch.nn.functional as F
-
-from training.heatmap import heatmap_png_bytes
+from knowngood.training.heatmap import heatmap_png_bytes
 
 MAX_SIDE = 2048  # overlays of larger images are drawn scaled down to this long side (a PNG for eyes, not machines)
 

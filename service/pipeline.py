@@ -14,17 +14,16 @@ from typing import BinaryIO
 import numpy as np
 import torch
 import torch.nn.functional as F
-
-from service.deps import ServiceState
-from service.files import HeatmapRecord, new_id
-from service.model_slot import LoadedModel
-from service.overlay import overlay_base, overlay_png, overlay_size
-from service.schemas import ImageInfo, InspectionCreated, InspectionOut, ModelRef, ReviewOut
-from service.settings import Caller
-from service.store import InspectionRecord, Review, to_iso, utc_now
-from training.data import decode_image, min_side_for
-from training.detector import Prepared, verdict
-from training.errors import BadImage
+from knowngood.service.deps import ServiceState
+from knowngood.service.files import HeatmapRecord, new_id
+from knowngood.service.model_slot import LoadedModel
+from knowngood.service.overlay import overlay_base, overlay_png, overlay_size
+from knowngood.service.schemas import ImageInfo, InspectionCreated, InspectionOut, ModelRef, ReviewOut
+from knowngood.service.settings import Caller
+from knowngood.service.store import InspectionRecord, Review, to_iso, utc_now
+from knowngood.training.data import decode_image, min_side_for
+from knowngood.training.detector import Prepared, verdict
+from knowngood.training.errors import BadImage
 
 log = logging.getLogger("knowngood.service")
 

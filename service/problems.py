@@ -15,11 +15,10 @@ from fastapi import FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.openapi.utils import get_openapi
 from fastapi.responses import JSONResponse
+from knowngood.service.schemas import ProblemOut
+from knowngood.training.errors import KnowngoodError
 from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
-
-from service.schemas import ProblemOut
-from training.errors import KnowngoodError
 
 MEDIA_TYPE = "application/problem+json"
 TYPE_PREFIX = "urn:knowngood:problem:"

@@ -10,11 +10,11 @@ import logging
 from dataclasses import dataclass
 from pathlib import Path
 
-from service.files import FileStore
-from service.model_slot import LoadedModel, ModelSlot, prepare
-from service.settings import Settings
-from service.store import SqliteStore
-from training.errors import BadBundle
+from knowngood.service.files import FileStore
+from knowngood.service.model_slot import LoadedModel, ModelSlot, prepare
+from knowngood.service.settings import Settings
+from knowngood.service.store import SqliteStore
+from knowngood.training.errors import BadBundle
 
 log = logging.getLogger("knowngood.service")
 

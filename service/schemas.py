@@ -5,9 +5,8 @@ from __future__ import annotations
 import datetime as dt
 from typing import Literal
 
+from knowngood.service.drift import Status
 from pydantic import BaseModel, ConfigDict, Field, ValidationInfo, field_validator
-
-from service.drift import Status
 
 Verdict = Literal["pass", "flag"]
 Label = Literal["good", "defective"]

@@ -10,10 +10,9 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Annotated, Literal
 
+from knowngood.training.data import MAX_PIXELS, MIN_SIDE
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
-
-from training.data import MAX_PIXELS, MIN_SIDE
 
 Role = Literal["station", "admin"]
 MIN_TOKEN_LENGTH = 12

@@ -16,7 +16,7 @@ from dataclasses import dataclass, fields
 from pathlib import Path
 from typing import Protocol
 
-from service.store_schema import SCHEMA_VERSION, create_schema  # noqa: F401 (the store's schema, re-exported)
+from knowngood.service.store_schema import SCHEMA_VERSION, create_schema  # noqa: F401 (the store's schema, re-exported)
 
 
 def utc_now() -> str:

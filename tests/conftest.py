@@ -7,11 +7,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
-
-from training import bundle
-from training.config import ModelConfig
-from training.detector import Detector
-from training.perceptual import load_pretrained
+from knowngood.training import bundle
+from knowngood.training.config import ModelConfig
+from knowngood.training.detector import Detector
+from knowngood.training.perceptual import load_pretrained
 
 
 def _tiny_good_images(n: int, size: int, seed: int = 0) -> list[np.ndarray]:

@@ -14,16 +14,15 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from knowngood.training import __version__, bundle_check
+from knowngood.training.config import ModelConfig, from_dict
+from knowngood.training.detector import Detector
+from knowngood.training.errors import BadBundle, BadConfig
+from knowngood.training.nets import build
+from knowngood.training.perceptual import PerceptualNet
+from knowngood.training.scoring import ScoringGraph
 from safetensors.torch import load as st_load
 from safetensors.torch import save as st_save
-
-from training import __version__, bundle_check
-from training.config import ModelConfig, from_dict
-from training.detector import Detector
-from training.errors import BadBundle, BadConfig
-from training.nets import build
-from training.perceptual import PerceptualNet
-from training.scoring import ScoringGraph
 
 FORMAT = "knowngood-bundle"
 # 4: the memory and adversarial terms (graph.memory*, graph.feature_critic.*), term weights, height, tile;

@@ -15,8 +15,8 @@ import struct
 import typing
 import zipfile
 
-from training.config import ModelConfig
-from training.errors import BadBundle
+from knowngood.training.config import ModelConfig
+from knowngood.training.errors import BadBundle
 
 MEMBERS = ("manifest.json", "weights.safetensors")
 MAX_MANIFEST_BYTES = 1024 * 1024  # the manifest is a few kB; evidence tables included, well under this

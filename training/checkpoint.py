@@ -9,9 +9,8 @@ import os
 from pathlib import Path
 
 import torch
-
-from training.config import to_dict
-from training.errors import BadConfig
+from knowngood.training.config import to_dict
+from knowngood.training.errors import BadConfig
 
 
 def _signature(fitter) -> dict:

@@ -11,8 +11,8 @@ import sys
 from importlib.metadata import entry_points
 from pathlib import Path
 
-from training.config import ModelConfig
-from training.errors import KnowngoodError
+from knowngood.training.config import ModelConfig
+from knowngood.training.errors import KnowngoodError
 
 
 def _add_train(sub) -> None:
@@ -118,25 +118,25 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 def cmd_train(args) -> int:
-    from training.commands import train
+    from knowngood.training.commands import train
 
     return train(args)
 
 
 def cmd_tune(args) -> int:
-    from training.commands import tune
+    from knowngood.training.commands import tune
 
     return tune(args)
 
 
 def cmd_inspect(args) -> int:
-    from training.commands import inspect
+    from knowngood.training.commands import inspect
 
     return inspect(args)
 
 
 def cmd_demo(args) -> int:
-    from training.demo import run_demo
+    from knowngood.training.demo import run_demo
 
     run_demo(args.out, steps=args.steps, minutes=args.minutes, seed=args.seed)
     return 0

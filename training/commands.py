@@ -11,15 +11,14 @@ from collections import Counter
 from pathlib import Path
 
 import numpy as np
-
-from training import bundle, runtime
-from training.config import ModelConfig, TrainConfig
-from training.data import fingerprint, list_images, load_folder, min_side_for, read_image, skip_reason
-from training.errors import BadConfig, BadDataset, BadImage
-from training.heatmap import heatmap_png_bytes
-from training.selection import term_summary
-from training.train import scale_note, train_bundle
-from training.tuning import threshold_for_catch, threshold_for_false_reject
+from knowngood.training import bundle, runtime
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.data import fingerprint, list_images, load_folder, min_side_for, read_image, skip_reason
+from knowngood.training.errors import BadConfig, BadDataset, BadImage
+from knowngood.training.heatmap import heatmap_png_bytes
+from knowngood.training.selection import term_summary
+from knowngood.training.train import scale_note, train_bundle
+from knowngood.training.tuning import threshold_for_catch, threshold_for_false_reject
 
 
 def _rate(name: str, value: float | None) -> None:
@@ -120,7 +119,7 @@ def tune(args) -> int:
 def tune_text(summary: dict) -> str:
     """The few lines a person reads after `tune`: the threshold and its target, the rates it achieves with their
     intervals, the AUROCs, and where the bundle and the report are."""
-    from training.report import mask_coverage, rate_text
+    from knowngood.training.report import mask_coverage, rate_text
 
     th = summary["threshold"]
     goal = (
@@ -164,8 +163,8 @@ def tune_model(
     """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves the tuned bundle to
     `output` (which may be `model` itself), writes the report; returns the summary (`report.metrics_summary` plus
     where things went and the tuned bundle's identity)."""
-    from training.holdout import load_holdout  # matplotlib comes with the report: keep `inspect` light
-    from training.report import metrics_summary, write_report
+    from knowngood.training.holdout import load_holdout  # matplotlib comes with the report: keep `inspect` light
+    from knowngood.training.report import metrics_summary, write_report
 
     det, frechet = bundle.load(model)
     holdout = load_holdout(det, good, defective, masks, skip_bad=skip_bad)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import dataclasses
 from dataclasses import dataclass, fields
 
-from training.errors import BadConfig
+from knowngood.training.errors import BadConfig
 
 TERM_FIELDS = ("pixel", "kappa", "perceptual", "memory", "adversarial")  # the terms' weights in ModelConfig
 

@@ -15,9 +15,8 @@ from pathlib import Path
 import numpy as np
 import torch
 import torch.nn.functional as F
+from knowngood.training.errors import BadDataset, BadImage, ImageTooLarge
 from PIL import Image
-
-from training.errors import BadDataset, BadImage, ImageTooLarge
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
 MAX_PIXELS = 64_000_000  # decompression-bomb guard: 8000 x 8000

@@ -6,11 +6,11 @@ import json
 import time
 from pathlib import Path
 
-from demo_parts import PART_KINDS, render_scenario
-from training.commands import tune_model
-from training.config import ModelConfig, TrainConfig
-from training.data import load_folder
-from training.train import train_bundle
+from knowngood.demo_parts import PART_KINDS, render_scenario
+from knowngood.training.commands import tune_model
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.data import load_folder
+from knowngood.training.train import train_bundle
 
 DEMO_STEPS = 900  # work per part kind; on 2 CPU cores the time cap ends it first (~420 steps), so figures vary a little
 DEMO_MINUTES = 2.5  # cap per part kind (three kinds), so `make demo` stays inside 15 minutes with the install

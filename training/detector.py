@@ -9,10 +9,9 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import torch
-
-from training.config import ModelConfig
-from training.data import to_model_input
-from training.scoring import ScoringGraph, resize_maps
+from knowngood.training.config import ModelConfig
+from knowngood.training.data import to_model_input
+from knowngood.training.scoring import ScoringGraph, resize_maps
 
 
 @dataclass(frozen=True)
@@ -46,7 +45,7 @@ class Detector:
 
     def use_onnx(self, threads: int = 0) -> Detector:
         """Switches scoring to ONNX Runtime (faster on CPU); the same graph and weights, so the same scores."""
-        from training.runtime import OnnxRunner
+        from knowngood.training.runtime import OnnxRunner
 
         self.runner = OnnxRunner(self.graph, threads=threads)
         return self

@@ -12,9 +12,8 @@ from __future__ import annotations
 
 import torch
 import torch.nn.functional as F
+from knowngood.training.memory import local_average
 from torch import nn
-
-from training.memory import local_average
 
 NOISE = 0.2  # generator's noise, as a share of the adapted features' mean per-channel std
 MARGIN = 0.5  # th of the truncated L1 loss

@@ -17,13 +17,12 @@ from pathlib import Path
 import numpy as np
 import torch
 import torch.nn.functional as F
+from knowngood.training.augment import process_variation, random_patches
+from knowngood.training.checkpoint import load_checkpoint, save_checkpoint
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.frechet import sample_distance
+from knowngood.training.nets import Critic, Encoder, Generator, build
 from tqdm import tqdm
-
-from training.augment import process_variation, random_patches
-from training.checkpoint import load_checkpoint, save_checkpoint
-from training.config import ModelConfig, TrainConfig
-from training.frechet import sample_distance
-from training.nets import Critic, Encoder, Generator, build
 
 
 @dataclass

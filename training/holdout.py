@@ -6,11 +6,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-
-from training.data import list_images, load_folder, min_side_for, read_image
-from training.detector import Detector
-from training.errors import BadDataset, BadImage
-from training.report import HoldoutResult
+from knowngood.training.data import list_images, load_folder, min_side_for, read_image
+from knowngood.training.detector import Detector
+from knowngood.training.errors import BadDataset, BadImage
+from knowngood.training.report import HoldoutResult
 
 
 def defect_class(path: Path, defective_dir: Path) -> str:

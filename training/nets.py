@@ -7,9 +7,8 @@ whole images; shapes in the comments are for a 128 px grayscale input with the d
 from __future__ import annotations
 
 import torch
+from knowngood.training.config import ModelConfig
 from torch import nn
-
-from training.config import ModelConfig
 
 
 def _down(c_in: int, c_out: int, norm: bool) -> nn.Sequential:

@@ -12,9 +12,8 @@ from pathlib import Path
 
 import torch
 import torch.nn.functional as F
+from knowngood.training.errors import BadConfig
 from torch import nn
-
-from training.errors import BadConfig
 
 # (c_in, c_mid, c_out, kernel, stride) of EfficientNet-Lite0's blocks 0-4: stage 1 (16 ch, 1/2 of the side),
 # stage 2 (24 ch, 1/4), stage 3 (40 ch, 1/8). `load_pretrained` checks the weights file against it.

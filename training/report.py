@@ -19,11 +19,10 @@ from sklearn import metrics as skm
 
 matplotlib.use("Agg")  # files only, never a window; must precede the pyplot import
 import matplotlib.pyplot as plt  # noqa: E402
-
-from training import __version__  # noqa: E402
-from training.heatmap import overlay_png  # noqa: E402
-from training.metrics import average_precision, image_auroc, pixel_auroc, pro_score  # noqa: E402
-from training.tuning import Rate, ThresholdChoice, per_class_catch  # noqa: E402
+from knowngood.training import __version__  # noqa: E402
+from knowngood.training.heatmap import overlay_png  # noqa: E402
+from knowngood.training.metrics import average_precision, image_auroc, pixel_auroc, pro_score  # noqa: E402
+from knowngood.training.tuning import Rate, ThresholdChoice, per_class_catch  # noqa: E402
 
 PRO_MAX_FPR = 0.3
 GALLERY_SIZE = 8

@@ -8,8 +8,7 @@ import warnings
 
 import numpy as np
 import torch
-
-from training.scoring import ScoringGraph
+from knowngood.training.scoring import ScoringGraph
 
 
 def export_onnx(graph: ScoringGraph) -> bytes:

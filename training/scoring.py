@@ -12,13 +12,12 @@ import math
 import numpy as np
 import torch
 import torch.nn.functional as F
+from knowngood.training.config import ModelConfig
+from knowngood.training.feature_critic import FeatureCritic
+from knowngood.training.memory import as_patches, build_memory, local_average, nearest_distance
+from knowngood.training.nets import Critic, Encoder, Generator
+from knowngood.training.perceptual import PerceptualNet
 from torch import nn
-
-from training.config import ModelConfig
-from training.feature_critic import FeatureCritic
-from training.memory import as_patches, build_memory, local_average, nearest_distance
-from training.nets import Critic, Encoder, Generator
-from training.perceptual import PerceptualNet
 
 SHRINK_PRIOR = 10.0  # pseudo-images of the global variance mixed into each pixel's variance (small holdouts)
 MIN_STD = 1e-4

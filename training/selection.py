@@ -17,11 +17,10 @@ import itertools
 
 import numpy as np
 import torch
+from knowngood.training.config import TERM_FIELDS, ModelConfig
+from knowngood.training.scoring import ScoringGraph
+from knowngood.training.synthetic import paste_defects
 from sklearn.metrics import roc_auc_score
-
-from training.config import TERM_FIELDS, ModelConfig
-from training.scoring import ScoringGraph
-from training.synthetic import paste_defects
 
 PIXEL_WEIGHT = 0.25  # share of the pixel AUROC in the criterion
 PIXEL_SAMPLE = 20000

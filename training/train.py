@@ -8,19 +8,18 @@ from pathlib import Path
 
 import numpy as np
 import torch
-
-from training import bundle
-from training.config import ModelConfig, TrainConfig, to_dict
-from training.data import ImageSet, to_model_input, working_shape
-from training.detector import Detector, pad_to, tile_boxes
-from training.errors import BadDataset
-from training.feature_critic import fit_feature_critic
-from training.fit import fit, split_indices
-from training.frechet import gaussian_stats
-from training.perceptual import load_pretrained
-from training.scoring import ScoringGraph
-from training.selection import choose_terms
-from training.tuning import conformal_threshold
+from knowngood.training import bundle
+from knowngood.training.config import ModelConfig, TrainConfig, to_dict
+from knowngood.training.data import ImageSet, to_model_input, working_shape
+from knowngood.training.detector import Detector, pad_to, tile_boxes
+from knowngood.training.errors import BadDataset
+from knowngood.training.feature_critic import fit_feature_critic
+from knowngood.training.fit import fit, split_indices
+from knowngood.training.frechet import gaussian_stats
+from knowngood.training.perceptual import load_pretrained
+from knowngood.training.scoring import ScoringGraph
+from knowngood.training.selection import choose_terms
+from knowngood.training.tuning import conformal_threshold
 
 MIN_IMAGES = 12
 SCORE_DEFINITION = (

@@ -15,9 +15,8 @@ import math
 from dataclasses import asdict, dataclass
 
 import numpy as np
-
-from training.errors import BadConfig, BadDataset
-from training.metrics import binomial_ci
+from knowngood.training.errors import BadConfig, BadDataset
+from knowngood.training.metrics import binomial_ci
 
 CI_METHOD = "clopper-pearson"
 CONFIDENCE = 0.95

@@ -8,14 +8,12 @@ from typing import Annotated, Literal
 import numpy as np
 from fastapi import APIRouter, BackgroundTasks, Depends, File, Form, Query, Request, Response, UploadFile
 from fastapi.exceptions import RequestValidationError
-from pydantic import StringConstraints
-
-from service import problems
-from service.deps import CurrentModel, ServiceState, State, StationCaller, Window
-from service.overlay import overlay_png
-from service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due, review_out
-from service.problems import Problem
-from service.schemas import (
+from knowngood.service import problems
+from knowngood.service.deps import CurrentModel, ServiceState, State, StationCaller, Window
+from knowngood.service.overlay import overlay_png
+from knowngood.service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due, review_out
+from knowngood.service.problems import Problem
+from knowngood.service.schemas import (
     NO_CONTROL,
     BatchCreated,
     InspectionCreated,
@@ -25,9 +23,10 @@ from service.schemas import (
     ReviewList,
     Verdict,
 )
-from service.store import InspectionFilter, InspectionRecord
-from training.data import decode_image
-from training.errors import KnowngoodError
+from knowngood.service.store import InspectionFilter, InspectionRecord
+from knowngood.training.data import decode_image
+from knowngood.training.errors import KnowngoodError
+from pydantic import StringConstraints
 
 router = APIRouter(prefix="/v1/inspections", tags=["inspections"])
 Text = Annotated[str | None, Form(max_length=200, pattern=NO_CONTROL)]

@@ -5,12 +5,11 @@ from __future__ import annotations
 from typing import Annotated
 
 from fastapi import APIRouter, File, Form, Query, UploadFile
-
-from service import problems
-from service.deps import AdminCaller, CurrentModel, ServiceState, State, StationCaller
-from service.model_slot import LoadedModel, model_event, prepare
-from service.restore import keep_bundles
-from service.schemas import (
+from knowngood.service import problems
+from knowngood.service.deps import AdminCaller, CurrentModel, ServiceState, State, StationCaller
+from knowngood.service.model_slot import LoadedModel, model_event, prepare
+from knowngood.service.restore import keep_bundles
+from knowngood.service.schemas import (
     NO_CONTROL,
     REASON_HELP,
     ChangeIn,
@@ -21,7 +20,7 @@ from service.schemas import (
     ThresholdIn,
     ThresholdInfo,
 )
-from service.settings import Caller, shown_to
+from knowngood.service.settings import Caller, shown_to
 
 router = APIRouter(prefix="/v1/model", tags=["model"])
 Operator = Annotated[str, Form(min_length=1, max_length=100, pattern=NO_CONTROL, description="who makes the change")]

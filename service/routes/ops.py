@@ -10,14 +10,13 @@ from pathlib import Path
 
 from fastapi import APIRouter
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, PlainTextResponse, Response, StreamingResponse
-
-from service import problems
-from service.deps import CurrentModel, ServiceState, State, StationCaller, Window
-from service.metrics import CONTENT_TYPE
-from service.overlay import legend_png
-from service.schemas import DriftOut, HealthOut, ReadyOut
-from service.settings import Caller, shown_to
-from service.store import InspectionRecord
+from knowngood.service import problems
+from knowngood.service.deps import CurrentModel, ServiceState, State, StationCaller, Window
+from knowngood.service.metrics import CONTENT_TYPE
+from knowngood.service.overlay import legend_png
+from knowngood.service.schemas import DriftOut, HealthOut, ReadyOut
+from knowngood.service.settings import Caller, shown_to
+from knowngood.service.store import InspectionRecord
 
 router = APIRouter(tags=["operations"])
 STATIC = Path(__file__).resolve().parent.parent / "static"

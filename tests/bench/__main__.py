@@ -19,9 +19,9 @@ import time
 from pathlib import Path
 
 import torch
+from knowngood.training import bundle
 
 from tests.bench import datasets, memory, quality, speed
-from training import bundle
 
 QUICK_DATASETS = ("elpv-mono", "demo-bracket")
 

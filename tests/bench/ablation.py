@@ -25,14 +25,13 @@ import dataclasses
 
 import numpy as np
 import torch
-
-from training.config import TERM_FIELDS
-from training.detector import Detector, tile_boxes
-from training.feature_critic import fit_feature_critic
-from training.fit import split_indices
-from training.perceptual import load_pretrained
-from training.scoring import TERMS, ScoringGraph, resize_maps, term_weights
-from training.train import _inputs  # the networks' inputs exactly as train_bundle makes them (tiles included)
+from knowngood.training.config import TERM_FIELDS
+from knowngood.training.detector import Detector, tile_boxes
+from knowngood.training.feature_critic import fit_feature_critic
+from knowngood.training.fit import split_indices
+from knowngood.training.perceptual import load_pretrained
+from knowngood.training.scoring import TERMS, ScoringGraph, resize_maps, term_weights
+from knowngood.training.train import _inputs  # the networks' inputs exactly as train_bundle makes them (tiles included)
 
 GAN_TERMS = ("pixel", "critic")
 

@@ -75,7 +75,7 @@ def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Po
     cmd = [
         sys.executable,
         "-m",
-        "training.cli",
+        "knowngood.training.cli",
         "serve",
         str(Path(bundle_path).resolve()),  # the server runs in `folder`: a relative path would miss
         "--port",
@@ -181,7 +181,7 @@ def _latency(samples: list, status=200) -> dict:
 
 
 def _default_limits() -> dict:
-    from service.settings import Settings
+    from knowngood.service.settings import Settings
 
     return {k: Settings.model_fields[k].default for k in ("max_decodes", "max_queue", "max_pixels")}
 

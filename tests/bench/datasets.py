@@ -45,9 +45,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from knowngood.training.data import list_images, load_folder, read_image, to_model_input
 from PIL import Image
-
-from training.data import list_images, load_folder, read_image, to_model_input
 
 ELPV = {
     "elpv-mono": (("mono",), 1.0),
@@ -174,7 +173,7 @@ def demo_root(cache: Path, seed: int = 0) -> Path:
     root = Path(cache) / f"demo-seed{seed}"
     done = root / ".complete"
     if not done.exists() or not all((root / kind).is_dir() for kind in DEMO.values()):
-        from demo_parts import render_scenario
+        from knowngood.demo_parts import render_scenario
 
         root.mkdir(parents=True, exist_ok=True)
         render_scenario(root, seed=seed)
@@ -214,7 +213,7 @@ def load_demo(name: str, cache: Path) -> Dataset:
 def large_rng(seed: int, split: int, defect_index: int, index: int, size: int) -> np.random.Generator:
     """The random stream of one large casting image, keyed by what it is (split 0 train, 1 good test, 2 defective
     test; the defect's index in `DEFECT_KINDS`; its number) and the image size."""
-    from demo_parts import PART_KINDS
+    from knowngood.demo_parts import PART_KINDS
 
     return np.random.default_rng([seed, _LARGE_KEY, PART_KINDS.index("casting"), split, defect_index, index, size])
 
@@ -227,7 +226,7 @@ def _save_png(path: Path, array: np.ndarray) -> None:
 def large_root(cache: Path, *, seed: int = 0, size: int = LARGE_SIZE, counts: dict = LARGE_COUNTS) -> Path:
     """Renders the large casting set into a cache folder named for its seed, size and counts, once (the layout of
     `render_scenario`'s part-kind folders); later calls reuse it. About a second per 1024 px image."""
-    from demo_parts import DEFECT_KINDS, render_large
+    from knowngood.demo_parts import DEFECT_KINDS, render_large
 
     n_train, n_good, n_bad = counts["train"], counts["good"], counts["per_defect"]
     root = Path(cache) / f"casting-large-{size}px-seed{seed}-{n_train}-{n_good}-{n_bad}"

@@ -10,11 +10,10 @@ from pathlib import Path
 
 import numpy as np
 import torch
-
-from training.config import ModelConfig, TrainConfig
-from training.data import ImageSet
-from training.detector import Detector
-from training.train import train_bundle
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.data import ImageSet
+from knowngood.training.detector import Detector
+from knowngood.training.train import train_bundle
 
 SIZE = 128
 

@@ -33,7 +33,7 @@ def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
         cmd = [
             sys.executable,
             "-m",
-            "training.cli",
+            "knowngood.training.cli",
             "train",
             str(good),
             "-o",

@@ -18,15 +18,14 @@ import time
 import numpy as np
 import torch
 import torch.nn.functional as F
+from knowngood.training.augment import random_patches
+from knowngood.training.config import ModelConfig
+from knowngood.training.memory import as_patches, build_memory, local_average, nearest_distance
+from knowngood.training.perceptual import load_pretrained
+from knowngood.training.scoring import gaussian_kernel
 from sklearn.decomposition import PCA
 from sklearn.neighbors import NearestNeighbors
 from torch import nn
-
-from training.augment import random_patches
-from training.config import ModelConfig
-from training.memory import as_patches, build_memory, local_average, nearest_distance
-from training.perceptual import load_pretrained
-from training.scoring import gaussian_kernel
 
 
 def _resize(x: torch.Tensor, size: int) -> torch.Tensor:

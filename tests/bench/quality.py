@@ -17,13 +17,13 @@ from pathlib import Path
 
 import numpy as np
 import torch
+from knowngood.training import metrics
+from knowngood.training.data import to_model_input
+from knowngood.training.scoring import TERMS, resize_maps, term_weights
 
 from tests.bench import ablation, knowngood_runner
 from tests.bench.datasets import Dataset
 from tests.bench.peers import AutoEncoderPeer, simple_peers
-from training import metrics
-from training.data import to_model_input
-from training.scoring import TERMS, resize_maps, term_weights
 
 SIZE = knowngood_runner.SIZE
 METHODS = ("knowngood", "patch-memory", "nearest-neighbour", "pca", "autoencoder", "mean-grey")

@@ -15,13 +15,12 @@ import time
 
 import numpy as np
 import torch
+from knowngood.training.bundle import new_graph
+from knowngood.training.config import ModelConfig
+from knowngood.training.detector import Detector, tile_boxes
+from knowngood.training.runtime import OnnxRunner
+from knowngood.training.scoring import term_weights
 from torch.utils.flop_counter import FlopCounterMode
-
-from training.bundle import new_graph
-from training.config import ModelConfig
-from training.detector import Detector, tile_boxes
-from training.runtime import OnnxRunner
-from training.scoring import term_weights
 
 THREADS = 2
 BATCHES = (1, 32)

@@ -7,16 +7,15 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from knowngood.demo_parts import DEFECT_KINDS, PART_KINDS, render_defective, render_good, render_large, render_scenario
+from knowngood.demo_parts.__main__ import main
+from knowngood.demo_parts.render import render
+from knowngood.demo_parts.scenario import image_rng
 from numpy.lib.stride_tricks import sliding_window_view
 from PIL import Image
 from scipy import ndimage
 from sklearn.metrics import roc_auc_score
 from sklearn.neighbors import NearestNeighbors
-
-from demo_parts import DEFECT_KINDS, PART_KINDS, render_defective, render_good, render_large, render_scenario
-from demo_parts.__main__ import main
-from demo_parts.render import render
-from demo_parts.scenario import image_rng
 
 SMALL = {"n_train": 3, "n_holdout_good": 2, "n_holdout_defective_per_kind": 2}
 CASES = [(kind, defect) for kind in PART_KINDS for defect in DEFECT_KINDS[kind]]

@@ -9,11 +9,10 @@ from pathlib import Path
 
 import pytest
 import torch
+from knowngood.service.app import create_app
+from knowngood.service.settings import Settings, get_settings
+from knowngood.training import bundle
 from service_testkit import ADMIN, STATION, png_bytes, start_server
-
-from service.app import create_app
-from service.settings import Settings, get_settings
-from training import bundle
 
 with warnings.catch_warnings():
     # Starlette asks for the `httpx2` package and warns when only `httpx` is installed; both work the same here.

@@ -7,10 +7,8 @@ import threading
 from dataclasses import replace
 
 import pytest
-from service_testkit import STATION_AUTH, png_bytes, post_image
-
-from service import pipeline
-from service.store import (
+from knowngood.service import pipeline
+from knowngood.service.store import (
     SCHEMA_VERSION,
     AuditStore,
     InspectionFilter,
@@ -24,7 +22,8 @@ from service.store import (
     select_inspections,
     utc_now,
 )
-from service.store_schema import MIGRATED_CALLER
+from knowngood.service.store_schema import MIGRATED_CALLER
+from service_testkit import STATION_AUTH, png_bytes, post_image
 
 RECORD = InspectionRecord(
     id="0" * 32,

@@ -12,9 +12,8 @@ import numpy as np
 import pytest
 import schemathesis
 from hypothesis import strategies as st
+from knowngood.service.app import create_app
 from service_testkit import ADMIN_AUTH, png_bytes, start_server
-
-from service.app import create_app
 
 # Examples per operation in the fuzzing phase (the coverage phase adds its own boundary cases). The default keeps the
 # run short on a busy 2-core machine; KNOWNGOOD_FUZZ_EXAMPLES=500 makes a long run.

@@ -8,12 +8,11 @@ import io
 
 import numpy as np
 import pytest
+from knowngood.service.pipeline import verdict_for
+from knowngood.training import bundle
+from knowngood.training.data import decode_image
 from PIL import Image
 from service_testkit import ADMIN_AUTH, STATION_AUTH, png_bytes, post_image, row_count
-
-from service.pipeline import verdict_for
-from training import bundle
-from training.data import decode_image
 
 
 def test_inspection_returns_verdict_and_is_stored(client, good_png):

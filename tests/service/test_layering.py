@@ -22,8 +22,26 @@ def _imports(path: Path) -> set[str]:
 def test_training_never_imports_service():
     files = sorted((ROOT / "training").rglob("*.py"))
     assert files
-    offenders = {str(f.relative_to(ROOT)) for f in files for name in _imports(f) if name.split(".")[0] == "service"}
+    offenders = {
+        str(f.relative_to(ROOT))
+        for f in files
+        for name in _imports(f)
+        if name.split(".")[:2] == ["knowngood", "service"] or name.split(".")[0] == "service"
+    }
     assert not offenders
+
+
+def test_every_import_goes_through_the_knowngood_namespace():
+    """Installed, the packages live under `knowngood.` only (no top-level `training` to clash with other
+    projects): an import by the bare folder name would work in the repository and fail once installed."""
+    bare = {
+        f"{f.relative_to(ROOT)}: {name}"
+        for folder in ("training", "service", "demo_parts", "tests")
+        for f in sorted((ROOT / folder).rglob("*.py"))
+        for name in _imports(f)
+        if name.split(".")[0] in ("training", "service", "demo_parts")
+    }
+    assert not bare
 
 
 def test_only_settings_reads_the_environment():

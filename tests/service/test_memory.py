@@ -9,10 +9,9 @@ from pathlib import Path
 
 import httpx
 import numpy as np
+from knowngood.training.data import BYTES_PER_PIXEL
 from PIL import Image
 from service_testkit import STATION_AUTH, start_server
-
-from training.data import BYTES_PER_PIXEL
 
 MAX_PIXELS = 16_000_000  # a quarter of the default, so the test takes seconds; the bound scales with it
 MIB = 1024 * 1024

@@ -8,9 +8,8 @@ import sqlite3
 
 import numpy as np
 import pytest
+from knowngood.training import bundle
 from service_testkit import ADMIN_AUTH, CHANGE, STATION_AUTH, png_bytes, post_image, row_count
-
-from training import bundle
 
 
 def _model(client) -> dict:

@@ -14,10 +14,9 @@ from pathlib import Path
 import httpx
 import numpy as np
 import pytest
+from knowngood.training.heatmap import MAX_ALPHA, overlay_rgb
 from PIL import Image
 from service_testkit import ADMIN_AUTH, OUTPUT, STATION, STATION_AUTH, png_bytes
-
-from training.heatmap import MAX_ALPHA, overlay_rgb
 
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMEDRIVER = Path("/usr/bin/chromedriver")

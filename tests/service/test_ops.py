@@ -12,11 +12,10 @@ from urllib.parse import urlsplit
 import httpx
 import numpy as np
 import pytest
+from knowngood.service.drift import STATES
+from knowngood.training import bundle
 from prometheus_client.parser import text_string_to_metric_families
 from service_testkit import STATION_AUTH, png_bytes, post_image, start_server
-
-from service.drift import STATES
-from training import bundle
 
 SAMPLE = re.compile(
     r'^([a-zA-Z_:][a-zA-Z0-9_:]*)(\{(?:[a-zA-Z_][a-zA-Z0-9_]*="(?:[^"\\]|\\.)*",?)*\})? (-?[0-9.e+-]+|\+Inf|NaN)$'

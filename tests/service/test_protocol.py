@@ -7,9 +7,8 @@ import logging
 import threading
 
 import pytest
+from knowngood.service import pipeline
 from service_testkit import ADMIN, ADMIN_AUTH, CHANGE, STATION_AUTH, post_image, row_count
-
-from service import pipeline
 
 
 class CountingBody:

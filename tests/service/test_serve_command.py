@@ -6,10 +6,9 @@ import subprocess
 import sys
 from pathlib import Path
 
+from knowngood.service import cli as service_cli
+from knowngood.training.cli import build_parser
 from service_testkit import free_port
-
-from service import cli as service_cli
-from training.cli import build_parser
 
 
 def test_serve_is_registered_through_the_entry_point(tiny_bundle):

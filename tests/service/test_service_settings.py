@@ -3,9 +3,8 @@
 from __future__ import annotations
 
 import pytest
+from knowngood.service.settings import Settings, get_settings
 from pydantic import ValidationError
-
-from service.settings import Settings, get_settings
 
 GOOD = "station-token-0001"
 

@@ -8,13 +8,12 @@ import dataclasses
 import numpy as np
 import pytest
 import torch
+from knowngood.training import bundle
+from knowngood.training.config import ModelConfig
+from knowngood.training.data import decode_image
+from knowngood.training.detector import Detector
+from knowngood.training.perceptual import load_pretrained
 from service_testkit import STATION_AUTH, png_bytes
-
-from training import bundle
-from training.config import ModelConfig
-from training.data import decode_image
-from training.detector import Detector
-from training.perceptual import load_pretrained
 
 
 @pytest.fixture(scope="module")

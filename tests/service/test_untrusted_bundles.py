@@ -11,10 +11,9 @@ import struct
 import zipfile
 
 import pytest
+from knowngood.training import bundle, bundle_check
+from knowngood.training.errors import BadBundle
 from service_testkit import ADMIN_AUTH, CHANGE, STATION_AUTH, post_image, row_count
-
-from training import bundle, bundle_check
-from training.errors import BadBundle
 
 
 def _members(data: bytes) -> tuple[dict, bytes]:
@@ -162,7 +161,7 @@ def test_a_swap_is_all_or_nothing(client, second_bundle, monkeypatch):
     monkeypatch.undo()
     assert _model(client)["sha256"] == before["sha256"] and _model(client)["previous"] is None
 
-    from service.routes import model as model_routes
+    from knowngood.service.routes import model as model_routes
 
     def unbuildable(*args):
         raise ValueError("cannot build the response")

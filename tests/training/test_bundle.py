@@ -8,9 +8,8 @@ import zipfile
 
 import numpy as np
 import pytest
-
-from training import bundle
-from training.errors import BadBundle
+from knowngood.training import bundle
+from knowngood.training.errors import BadBundle
 
 
 def _rezip(src: bytes, manifest_edit=None, weights: bytes | None = None) -> bytes:

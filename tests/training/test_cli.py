@@ -9,16 +9,15 @@ from pathlib import Path
 import numpy as np
 import pytest
 import torch
+from knowngood.demo_parts import render_scenario
+from knowngood.training import bundle
+from knowngood.training.cli import main
+from knowngood.training.commands import heatmap_names
+from knowngood.training.config import ModelConfig
+from knowngood.training.data import MIN_SIDE, min_side_for
+from knowngood.training.detector import Detector
+from knowngood.training.report import rate_text
 from PIL import Image
-
-from demo_parts import render_scenario
-from training import bundle
-from training.cli import main
-from training.commands import heatmap_names
-from training.config import ModelConfig
-from training.data import MIN_SIDE, min_side_for
-from training.detector import Detector
-from training.report import rate_text
 
 STEPS = "12"
 
@@ -172,16 +171,20 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
         ["inspect", str(trained), str(broken), "--heatmaps", str(broken)],
     ]
     for args in cases:
-        proc = subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True)
+        proc = subprocess.run([sys.executable, "-m", "knowngood.training.cli", *args], capture_output=True, text=True)
         assert proc.returncode == 2, proc.stderr
         lines = proc.stderr.strip().splitlines()
         assert len(lines) == 1 and lines[0].startswith("knowngood: error:") and "Traceback" not in proc.stderr
     assert (
         "broken.png"
-        in subprocess.run([sys.executable, "-m", "training.cli", *cases[0]], capture_output=True, text=True).stderr
+        in subprocess.run(
+            [sys.executable, "-m", "knowngood.training.cli", *cases[0]], capture_output=True, text=True
+        ).stderr
     )
     for args, name in zip(cases[4:], ("--minutes", "--minutes", "--steps", "missing_dir", "--batch", "--heatmaps")):
-        err = subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True).stderr
+        err = subprocess.run(
+            [sys.executable, "-m", "knowngood.training.cli", *args], capture_output=True, text=True
+        ).stderr
         assert name in err, err
 
 
@@ -193,7 +196,7 @@ def test_inspect_json_into_a_closed_pipe_ends_quietly(trained, scenario):
 
 
 def _run(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run([sys.executable, "-m", "training.cli", *args], capture_output=True, text=True)
+    return subprocess.run([sys.executable, "-m", "knowngood.training.cli", *args], capture_output=True, text=True)
 
 
 def test_tune_never_rewrites_the_model_unasked(trained, scenario, tmp_path, capsys):

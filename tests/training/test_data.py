@@ -7,10 +7,9 @@ import zlib
 import numpy as np
 import pytest
 import tifffile
+from knowngood.training.data import decode_image, load_folder, to_model_input
+from knowngood.training.errors import BadDataset, BadImage, ImageTooLarge
 from PIL import Image, ImageOps
-
-from training.data import decode_image, load_folder, to_model_input
-from training.errors import BadDataset, BadImage, ImageTooLarge
 
 
 def _bytes(img: Image.Image, fmt: str, **kw) -> bytes:

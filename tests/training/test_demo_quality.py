@@ -11,14 +11,13 @@ from __future__ import annotations
 
 import pytest
 import torch
-
-from demo_parts import PART_KINDS, render_scenario
-from training.config import ModelConfig, TrainConfig
-from training.data import load_folder
-from training.holdout import load_holdout
-from training.metrics import image_auroc, pixel_auroc
-from training.report import pixel_sets
-from training.train import train_bundle
+from knowngood.demo_parts import PART_KINDS, render_scenario
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.data import load_folder
+from knowngood.training.holdout import load_holdout
+from knowngood.training.metrics import image_auroc, pixel_auroc
+from knowngood.training.report import pixel_sets
+from knowngood.training.train import train_bundle
 
 STEPS = 40
 N_TRAIN, N_GOOD, N_PER_DEFECT = 120, 30, 6

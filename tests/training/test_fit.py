@@ -3,11 +3,10 @@
 import numpy as np
 import pytest
 import torch
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.errors import BadConfig
+from knowngood.training.fit import Fitter, fit, gradient_penalty, split_indices
 from torch import nn
-
-from training.config import ModelConfig, TrainConfig
-from training.errors import BadConfig
-from training.fit import Fitter, fit, gradient_penalty, split_indices
 
 
 class LinearCritic(nn.Module):

@@ -3,8 +3,7 @@
 import numpy as np
 import pytest
 import scipy.linalg
-
-from training.frechet import frechet_distance, gaussian_stats, reference_distance, sample_distance
+from knowngood.training.frechet import frechet_distance, gaussian_stats, reference_distance, sample_distance
 
 
 def _scipy_frechet(mu1, s1, mu2, s2):

@@ -2,10 +2,9 @@
 
 import numpy as np
 import pytest
+from knowngood.training.metrics import average_precision, binomial_ci, image_auroc, pixel_auroc, pro_score
 from scipy import ndimage, stats
 from sklearn import metrics as skm
-
-from training.metrics import average_precision, binomial_ci, image_auroc, pixel_auroc, pro_score
 
 
 def _scored(n_good=60, n_bad=25, seed=0):

@@ -11,9 +11,8 @@ import itertools
 
 import numpy as np
 import torch
+from knowngood.training.memory import build_memory, greedy_coreset, local_average, nearest_distance
 from scipy.spatial.distance import cdist
-
-from training.memory import build_memory, greedy_coreset, local_average, nearest_distance
 
 
 def _radius(points: np.ndarray, centres: np.ndarray) -> float:

@@ -3,11 +3,10 @@
 import numpy as np
 import pytest
 import torch
-
-from training import bundle
-from training.config import ModelConfig
-from training.errors import BadConfig
-from training.perceptual import LITE0_BLOCKS, PerceptualNet, block_shapes, load_pretrained, pretrained_file
+from knowngood.training import bundle
+from knowngood.training.config import ModelConfig
+from knowngood.training.errors import BadConfig
+from knowngood.training.perceptual import LITE0_BLOCKS, PerceptualNet, block_shapes, load_pretrained, pretrained_file
 
 
 def test_weights_are_the_packaged_efficientnet_lite0_ones():

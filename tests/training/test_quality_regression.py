@@ -11,12 +11,12 @@ from __future__ import annotations
 
 import pytest
 import torch
+from knowngood.training.data import to_model_input
+from knowngood.training.metrics import image_auroc
 
 from tests.bench import knowngood_runner
 from tests.bench.datasets import elpv_reduced
 from tests.bench.peers import NearestNeighbourPeer, PatchMemoryPeer
-from training.data import to_model_input
-from training.metrics import image_auroc
 
 pytest.importorskip("elpv_dataset")  # a test extra; the data comes with the package
 

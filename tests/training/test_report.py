@@ -13,15 +13,14 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from knowngood.training import __version__, bundle
+from knowngood.training.cli import main
+from knowngood.training.data import fingerprint
+from knowngood.training.heatmap import MAX_ALPHA, heatmap_png_bytes, overlay_png, overlay_rgb
+from knowngood.training.metrics import image_auroc, pixel_auroc, pro_score
+from knowngood.training.report import CAUTION, HoldoutResult, metrics_summary, write_report
+from knowngood.training.tuning import conformal_threshold, threshold_for_false_reject
 from PIL import Image
-
-from training import __version__, bundle
-from training.cli import main
-from training.data import fingerprint
-from training.heatmap import MAX_ALPHA, heatmap_png_bytes, overlay_png, overlay_rgb
-from training.metrics import image_auroc, pixel_auroc, pro_score
-from training.report import CAUTION, HoldoutResult, metrics_summary, write_report
-from training.tuning import conformal_threshold, threshold_for_false_reject
 
 PNG_MAGIC = b"\x89PNG\r\n\x1a\n"
 # 12 good then 8 defective; at a 10 % false-reject target the threshold falls between 1.4 and 1.9, so the good 2.6

@@ -5,8 +5,7 @@ import dataclasses
 import numpy as np
 import pytest
 import torch
-
-from training import bundle, scoring
+from knowngood.training import bundle, scoring
 
 
 def test_score_is_top_fraction_mean_of_the_weighted_maximum_of_standardised_terms(tiny_bundle, tiny_good_images):

@@ -9,12 +9,11 @@ from __future__ import annotations
 
 import numpy as np
 import torch
-
-from training.config import ModelConfig
-from training.nets import build
-from training.perceptual import load_pretrained
-from training.selection import TOLERANCE, _ranked, choose_terms
-from training.synthetic import paste_defects, perlin
+from knowngood.training.config import ModelConfig
+from knowngood.training.nets import build
+from knowngood.training.perceptual import load_pretrained
+from knowngood.training.selection import TOLERANCE, _ranked, choose_terms
+from knowngood.training.synthetic import paste_defects, perlin
 
 
 def _images(n: int = 12, size: int = 32) -> torch.Tensor:

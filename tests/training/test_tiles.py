@@ -12,14 +12,13 @@ from __future__ import annotations
 import numpy as np
 import pytest
 import torch
+from knowngood.demo_parts import render_large
+from knowngood.demo_parts.scenario import image_rng
+from knowngood.training.config import ModelConfig, TrainConfig
+from knowngood.training.data import ImageSet
+from knowngood.training.detector import tile_boxes
+from knowngood.training.train import scale_note, train_bundle
 from PIL import Image
-
-from demo_parts import render_large
-from demo_parts.scenario import image_rng
-from training.config import ModelConfig, TrainConfig
-from training.data import ImageSet
-from training.detector import tile_boxes
-from training.train import scale_note, train_bundle
 
 SIDE = 512
 TILE = 128
@@ -85,7 +84,7 @@ def test_a_few_pixel_defect_is_found_at_full_resolution_and_missed_at_128_px(mod
 def test_train_warns_when_small_defects_would_vanish(tmp_path, capsys):
     """`train` says so when whole images are shrunk far below the camera's scale (a 512 px image at 128 px: a
     2-px feature at the working size is 8 native px), and names the options that keep the scale."""
-    from training.cli import main
+    from knowngood.training.cli import main
 
     good = tmp_path / "good"
     good.mkdir()

@@ -5,16 +5,15 @@ import json
 
 import numpy as np
 import pytest
-from scipy import stats
-
-from training.errors import BadConfig, BadDataset
-from training.tuning import (
+from knowngood.training.errors import BadConfig, BadDataset
+from knowngood.training.tuning import (
     Rate,
     conformal_threshold,
     per_class_catch,
     threshold_for_catch,
     threshold_for_false_reject,
 )
+from scipy import stats
 
 # ---------------------------------------------------------------- split-conformal (Vovk et al. 2005)
 
