@@ -76,7 +76,7 @@ def train_bundle(
             perceptual,
             fit_x=sets["fit"],
             std_x=sets["std"],
-            good_x=sets["cal"],
+            good_x=_sample(sets["cal"], MAX_SELECTION, train.seed),
             shifts=train.residual_shifts,
             feature_critic=feature_critic,
             fit_phi=phi,
@@ -109,6 +109,16 @@ def train_bundle(
 
 
 MAX_TILES = 4000  # tiles per split: enough to cover a part's variation, bounded memory for multi-megapixel sets
+# inputs the choice of terms pastes defects into (x 4 with the copies): more adds little evidence and, for tiled
+# models of megapixel images (thousands of tiles), cost most of a 25-minute training (bench, demo-casting-large)
+MAX_SELECTION = 512
+
+
+def _sample(x: torch.Tensor, n: int, seed: int) -> torch.Tensor:
+    """At most n of x's rows, a fixed random choice in their original order."""
+    if len(x) <= n:
+        return x
+    return x[np.sort(np.random.default_rng(seed).choice(len(x), n, replace=False))]
 
 
 SCALE_NOTE_RATIO = 2.5  # native long side / working long side from which `scale_note` speaks
