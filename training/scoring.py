@@ -218,9 +218,11 @@ class ScoringGraph(nn.Module):
             self.memory_sq.copy_((self.memory * self.memory).sum(1))
 
     @torch.no_grad()
-    def fit_standardisation(self, good: torch.Tensor, batch: int = 32) -> None:
+    def fit_standardisation(self, good: torch.Tensor, batch: int = 8) -> None:
         """Sets the per-pixel statistics from held-out known-good images (N, C, H, W), never training images.
-        A tiled model's tiles come from anywhere in the image, so its statistics are one per term, not per pixel."""
+        A tiled model's tiles come from anywhere in the image, so its statistics are one per term, not per pixel.
+        Batches of 8: the memory term's distance matrix is batch x positions x entries floats (8 x 1024 x 4096 at
+        128 px: 134 MB, with its temporaries a few times that), which set training's peak memory at batch 32."""
         self.eval()
         maps = torch.cat([self.term_maps(good[i : i + batch]) for i in range(0, len(good), batch)])
         mean, std = maps.mean(0), _shrunk_std(maps)

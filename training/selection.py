@@ -96,7 +96,7 @@ def candidate_graphs(
 
 
 @torch.no_grad()
-def _z_maps(graph: ScoringGraph, x: torch.Tensor, batch: int = 16) -> torch.Tensor:
+def _z_maps(graph: ScoringGraph, x: torch.Tensor, batch: int = 8) -> torch.Tensor:
     """(N, H, W) standardised map of a one-term graph."""
     graph.eval()
     parts = []
