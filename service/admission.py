@@ -22,14 +22,12 @@ class Stage:
         self._running = threading.BoundedSemaphore(slots)
         self._lock = threading.Lock()
         self._inside = 0  # running + waiting
-        self.refused = 0
 
     @contextmanager
     def enter(self) -> Iterator[None]:
         """Runs the block in one of the stage's slots, waiting if the queue has room; raises Problem(503) if not."""
         with self._lock:
             if self._inside >= self.slots + self.queue:
-                self.refused += 1
                 if self.on_refuse is not None:
                     self.on_refuse()
                 raise Problem(

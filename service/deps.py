@@ -17,7 +17,7 @@ from knowngood.service.files import FileStore
 from knowngood.service.metrics import Metrics
 from knowngood.service.model_slot import LoadedModel, ModelSlot
 from knowngood.service.problems import Problem
-from knowngood.service.settings import Caller, Settings, get_settings
+from knowngood.service.settings import Caller, Settings
 from knowngood.service.store import SqliteStore, to_iso
 
 
@@ -64,7 +64,6 @@ async def get_state(request: Request) -> ServiceState:
 
 
 State = Annotated[ServiceState, Depends(get_state)]
-SettingsDep = Annotated[Settings, Depends(get_settings)]
 _bearer = HTTPBearer(auto_error=False, description="a station or admin token (KNOWNGOOD_*_TOKENS)")
 
 

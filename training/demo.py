@@ -41,7 +41,7 @@ def run_demo(out: Path, *, steps: int | None = None, minutes: float | None = Non
         )
         results[kind] = summary
         print(
-            f"[{kind}] image AUROC {summary['image_auroc']:.3f}  pixel AUROC {summary.get('pixel_auroc', 0):.3f}  "
+            f"[{kind}] image AUROC {summary['image_auroc']:.3f}  pixel AUROC {_fmt(summary.get('pixel_auroc'))}  "
             f"report {summary['report']}",
             flush=True,
         )
@@ -50,3 +50,8 @@ def run_demo(out: Path, *, steps: int | None = None, minutes: float | None = Non
     print(f"\ndone in {results['seconds']:.0f} s. Reports: " + ", ".join(results[k]["report"] for k in PART_KINDS))
     print(f"Models: {', '.join(str(out / f'{k}.kgm') for k in PART_KINDS)}; summary: {out / 'summary.json'}")
     return results
+
+
+def _fmt(value: float | None) -> str:
+    """A figure to 3 decimals, or "–" where there is none (a pixel AUROC without masks)."""
+    return "–" if value is None else f"{value:.3f}"
