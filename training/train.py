@@ -114,11 +114,12 @@ MAX_TILES = 4000  # tiles per split: enough to cover a part's variation, bounded
 MAX_SELECTION = 512
 
 
-def _sample(x: torch.Tensor, n: int, seed: int) -> torch.Tensor:
-    """At most n of x's rows, a fixed random choice in their original order."""
+def _sample(x, n: int, seed: int):
+    """At most n of x's items (a tensor's rows or a list), a fixed random choice in their original order."""
     if len(x) <= n:
         return x
-    return x[np.sort(np.random.default_rng(seed).choice(len(x), n, replace=False))]
+    keep = np.sort(np.random.default_rng(seed).choice(len(x), n, replace=False))
+    return x[keep] if isinstance(x, torch.Tensor) else [x[k] for k in keep]
 
 
 SCALE_NOTE_RATIO = 2.5  # native long side / working long side from which `scale_note` speaks
@@ -156,9 +157,7 @@ def _inputs(images: list, idx: np.ndarray, model: ModelConfig, seed: int) -> tor
     if not model.tile:
         return to_model_input(chosen, size=model.shape, channels=model.channels)
     boxes = [(k, box) for k, im in enumerate(chosen) for box in tile_boxes(im.shape[-2:], model.tile)]
-    if len(boxes) > MAX_TILES:
-        keep = np.sort(np.random.default_rng(seed).choice(len(boxes), MAX_TILES, replace=False))
-        boxes = [boxes[k] for k in keep]
+    boxes = _sample(boxes, MAX_TILES, seed)
     t = model.tile
     crops = []
     for k, (y, x) in boxes:
