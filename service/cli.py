@@ -1,5 +1,6 @@
-"""`knowngood serve MODEL [--host] [--port] [--db] [--data-dir]`: registered under the `knowngood.commands` entry
-point, so `training.cli` offers it without importing the service. Flags override KNOWNGOOD_* environment settings."""
+"""`knowngood serve [MODEL] [--part-type NAME] [--host] [--port] [--db URL] [--data-dir]`: registered under the
+`knowngood.commands` entry point, so `training.cli` offers it without importing the service. Flags override
+KNOWNGOOD_* environment settings."""
 
 from __future__ import annotations
 
@@ -17,11 +18,32 @@ def register(subparsers) -> None:
         description="Serve a model bundle over REST v1. Tokens and limits come from KNOWNGOOD_* "
         "environment variables (see the README); flags override them.",
     )
-    p.add_argument("model", type=Path, metavar="MODEL", help="model bundle to serve")
+    p.add_argument(
+        "model",
+        type=Path,
+        nargs="?",
+        default=None,
+        metavar="MODEL",
+        help="model bundle to serve for --part-type (optional once the audit store serves models)",
+    )
+    p.add_argument(
+        "--part-type",
+        default=None,
+        metavar="NAME",
+        help="the part type MODEL inspects (default 'default'); others are added with PUT /v1/part-types/NAME/model",
+    )
     p.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1; 0.0.0.0 in the container)")
     p.add_argument("--port", type=int, default=None, help="port (default 8000)")
-    p.add_argument("--db", type=Path, default=None, help="SQLite audit store (default knowngood.db)")
-    p.add_argument("--data-dir", type=Path, default=None, help="heatmaps, images, uploaded bundles (knowngood-data)")
+    p.add_argument(
+        "--db",
+        default=None,
+        metavar="URL",
+        help="audit store: an SQLite file (default knowngood.db) or postgresql://user@host/db, which several "
+        "instances share",
+    )
+    p.add_argument(
+        "--data-dir", type=Path, default=None, help="what versions before 0.2 kept in a folder (knowngood-data)"
+    )
     p.set_defaults(func=serve)
 
 
@@ -29,7 +51,15 @@ def _settings(args):
     from knowngood.service.settings import Settings
     from pydantic import ValidationError
 
-    flags = {"model_path": args.model, "host": args.host, "port": args.port, "db": args.db, "data_dir": args.data_dir}
+    flags = {
+        "model_path": args.model,
+        "part_type": args.part_type,
+        "host": args.host,
+        "port": args.port,
+        "data_dir": args.data_dir,
+    }
+    if args.db is not None:
+        flags["database_url" if "://" in args.db else "db"] = args.db
     try:
         return Settings(**{k: v for k, v in flags.items() if v is not None})
     except ValidationError as exc:

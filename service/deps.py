@@ -15,10 +15,11 @@ from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 from knowngood.service.admission import Stage
 from knowngood.service.files import FileStore
 from knowngood.service.metrics import Metrics
-from knowngood.service.model_slot import LoadedModel, ModelSlot
+from knowngood.service.part_types import PartTypes
 from knowngood.service.problems import Problem
+from knowngood.service.restore import Models
 from knowngood.service.settings import Caller, Settings
-from knowngood.service.store import SqliteStore, to_iso
+from knowngood.service.store import Store, to_iso
 
 
 @dataclass
@@ -26,9 +27,10 @@ class ServiceState:
     """Everything the lifespan opens, in one place on `app.state.service`."""
 
     settings: Settings
-    store: SqliteStore
+    store: Store
     files: FileStore
-    slot: ModelSlot
+    parts: PartTypes  # one model slot per part type
+    models: Models  # bundles readied for serving, by sha256
     metrics: Metrics
     tokens: dict[str, Caller]  # sha256 of the token -> caller
     decoding: Stage  # at most max_decodes images decoded at once, max_queue waiting
@@ -84,10 +86,6 @@ async def require_admin(caller: Annotated[Caller, Depends(get_caller)]) -> Calle
     return check_admin(caller)
 
 
-async def get_model(state: State) -> LoadedModel:
-    return state.slot.get()
-
-
 @dataclass(frozen=True)
 class TimeWindow:
     """since <= time < until as the store's UTC ISO text; either may be None."""
@@ -123,5 +121,4 @@ def get_window(
 
 StationCaller = Annotated[Caller, Depends(get_caller)]  # station or admin
 AdminCaller = Annotated[Caller, Depends(require_admin)]
-CurrentModel = Annotated[LoadedModel, Depends(get_model)]
 Window = Annotated[TimeWindow, Depends(get_window)]

@@ -39,7 +39,8 @@ class DriftReport:
 
 
 class DriftMonitor:
-    """The production feature window of one model (a swap starts a new one), with cached references per n."""
+    """The drift assessment of one model (a swap starts a new one), with cached references per n; the window is
+    given to `assess` or collected with `add`."""
 
     def __init__(self, frechet: dict[str, np.ndarray], *, window: int):
         self.frechet = frechet
@@ -58,9 +59,15 @@ class DriftMonitor:
     def has_reference(self) -> bool:
         return all(k in self.frechet for k in ("train_mu", "train_sigma", "holdout_features"))
 
-    def assess(self, *, min_images: int, sigmas: float) -> DriftReport:
-        with self._lock:
-            feats = np.array(self._feats)
+    def assess(self, *, min_images: int, sigmas: float, features: np.ndarray | None = None) -> DriftReport:
+        """The window is `features` (N, F), oldest first, when given (the service reads it from the audit store,
+        so it spans instances and restarts), else what `add` collected."""
+        if features is None:
+            with self._lock:
+                feats = np.array(self._feats)
+        else:
+            feats = np.asarray(features, dtype=np.float64)
+            feats = feats.reshape(len(feats), -1) if len(feats) else np.zeros((0, 1))
         count = len(feats)
         if not self.has_reference():
             return DriftReport(

@@ -8,6 +8,7 @@ from __future__ import annotations
 import threading
 import time
 from collections import deque
+from dataclasses import dataclass
 
 import numpy as np
 from knowngood.service.drift import STATES, DriftReport
@@ -39,61 +40,78 @@ DRIFT_GAUGES = {  # DriftReport field -> (metric name, help)
 }
 
 
-class _Served:
-    """Collects what is true at scrape time: the model being served, the recent scores' quantiles and drift."""
+@dataclass(frozen=True)
+class Served:
+    """What one part type serves at scrape time."""
+
+    part_type: str
+    model_id: str
+    sha256: str
+    revision: str
+    threshold: float
+    drift: DriftReport | None
+
+
+class _Scraped:
+    """Collects what is true at scrape time, per part type: its model, recent scores' quantiles and drift."""
 
     def __init__(self) -> None:
         self.lock = threading.Lock()
-        self.scores: deque[float] = deque(maxlen=SCORE_WINDOW)
-        self.score_sum = 0.0
-        self.score_count = 0
-        self.model: tuple[str, str, str, float] | None = None  # id, sha256, revision, threshold: set before a scrape
-        self.drift: DriftReport | None = None  # likewise
+        self.scores: dict[str, deque[float]] = {}
+        self.score_sum: dict[str, float] = {}
+        self.score_count: dict[str, int] = {}
+        self.served: list[Served] = []  # set before a scrape
 
     def collect(self):
         with self.lock:
-            scores, total, count, model = list(self.scores), self.score_sum, self.score_count, self.model
-            drift = self.drift
+            scores = {k: list(v) for k, v in self.scores.items()}
+            totals, counts, served = dict(self.score_sum), dict(self.score_count), list(self.served)
         summary = Metric(
             "knowngood_anomaly_score",
-            f"Anomaly scores (higher = less like known-good); quantiles over the last {SCORE_WINDOW}.",
+            f"Anomaly scores by part type (higher = less like known-good); quantiles over the last {SCORE_WINDOW}.",
             "summary",
         )
-        if scores:
-            for q, v in zip(QUANTILES, np.quantile(np.asarray(scores), QUANTILES)):
-                summary.add_sample("knowngood_anomaly_score", {"quantile": str(q)}, float(v))
-        summary.add_sample("knowngood_anomaly_score_sum", {}, total)
-        summary.add_sample("knowngood_anomaly_score_count", {}, count)
+        for part_type in sorted(scores):
+            for q, v in zip(QUANTILES, np.quantile(np.asarray(scores[part_type]), QUANTILES)):
+                summary.add_sample("knowngood_anomaly_score", {"part_type": part_type, "quantile": str(q)}, float(v))
+            summary.add_sample("knowngood_anomaly_score_sum", {"part_type": part_type}, totals[part_type])
+            summary.add_sample("knowngood_anomaly_score_count", {"part_type": part_type}, counts[part_type])
         yield summary
         info = GaugeMetricFamily(
             "knowngood_model_info",
-            "The model being served (1 = loaded); the revision changes with each threshold change.",
-            labels=["model_id", "sha256", "revision"],
+            "The model each part type serves (1 = loaded); the revision changes with each threshold change.",
+            labels=["part_type", "model_id", "sha256", "revision"],
         )
-        if model is not None:
-            info.add_metric([model[0], model[1], model[2]], 1)
+        threshold = GaugeMetricFamily(
+            "knowngood_threshold", "Current threshold by part type: flag when score > threshold.", labels=["part_type"]
+        )
+        for s in served:
+            info.add_metric([s.part_type, s.model_id, s.sha256, s.revision], 1)
+            threshold.add_metric([s.part_type], s.threshold)
         yield info
-        if model is not None:
-            yield GaugeMetricFamily(
-                "knowngood_threshold", "Current threshold: flag when score > threshold.", value=model[3]
-            )
-        if drift is not None:
-            yield from _drift_families(drift)
+        yield threshold
+        yield from _drift_families([s for s in served if s.drift is not None])
 
 
-def _drift_families(report: DriftReport):
+def _drift_families(served: list[Served]):
     state = GaugeMetricFamily(
         "knowngood_drift_state",
-        "Drift assessment of the served model: 1 for its state now, 0 for the others.",
-        labels=["state"],
+        "Drift assessment of each part type's model: 1 for its state now, 0 for the others.",
+        labels=["part_type", "state"],
     )
-    for name in STATES:
-        state.add_metric([name], 1.0 if report.status == name else 0.0)
+    gauges = {
+        field: GaugeMetricFamily(name, help_text, labels=["part_type"])
+        for field, (name, help_text) in DRIFT_GAUGES.items()
+    }
+    for s in served:
+        for name in STATES:
+            state.add_metric([s.part_type, name], 1.0 if s.drift.status == name else 0.0)
+        for field, gauge in gauges.items():
+            value = getattr(s.drift, field)
+            if value is not None:  # not assessed yet (too few images, no reference): no sample, not a made-up one
+                gauge.add_metric([s.part_type], float(value))
     yield state
-    for field, (name, help_text) in DRIFT_GAUGES.items():
-        value = getattr(report, field)
-        if value is not None:  # not assessed yet (too few images, no reference): no sample rather than a made-up one
-            yield GaugeMetricFamily(name, help_text, value=float(value))
+    yield from gauges.values()
 
 
 class Metrics:
@@ -115,49 +133,42 @@ class Metrics:
             registry=self.registry,
         )
         self.verdicts = Counter(
-            "knowngood_inspections", "Accepted inspections by verdict.", ["verdict"], registry=self.registry
+            "knowngood_inspections",
+            "Accepted inspections by part type and verdict.",
+            ["part_type", "verdict"],
+            registry=self.registry,
         )
-        for verdict in ("pass", "flag"):
-            self.verdicts.labels(verdict)
         self.busy = Counter(
             "knowngood_busy_refusals",
             "Requests answered 503 because a stage (decoding, scoring) and its queue were full.",
             ["stage"],
             registry=self.registry,
         )
-        self._served = _Served()
-        self.registry.register(self._served)
+        self._scraped = _Scraped()
+        self.registry.register(self._scraped)
 
     def observe_request(self, method: str, route: str, status: int, seconds: float) -> None:
         method = method if method in METHODS else "other"
         self.requests.labels(method, route, str(status)).inc()
         self.latency.labels(route).observe(seconds)
 
-    def observe_inspection(self, verdict: str, score: float) -> None:
-        self.verdicts.labels(verdict).inc()
-        with self._served.lock:
-            self._served.scores.append(score)
-            self._served.score_sum += score
-            self._served.score_count += 1
+    def observe_inspection(self, part_type: str, verdict: str, score: float) -> None:
+        self.verdicts.labels(part_type, verdict).inc()
+        with self._scraped.lock:
+            if part_type not in self._scraped.scores:
+                self._scraped.scores[part_type] = deque(maxlen=SCORE_WINDOW)
+                self._scraped.score_sum[part_type], self._scraped.score_count[part_type] = 0.0, 0
+            self._scraped.scores[part_type].append(score)
+            self._scraped.score_sum[part_type] += score
+            self._scraped.score_count[part_type] += 1
 
     def observe_busy(self, stage: str) -> None:
         self.busy.labels(stage).inc()
 
-    def render(
-        self,
-        *,
-        model_id: str | None,
-        model_sha256: str | None = None,
-        model_revision: str | None = None,
-        threshold: float | None = None,
-        drift: DriftReport | None = None,
-    ) -> str:
-        """The text exposition; the served model and its drift assessment as they are now (None: no model)."""
-        with self._served.lock:
-            self._served.model = (
-                None if model_id is None else (model_id, model_sha256 or "", model_revision or "", float(threshold))
-            )
-            self._served.drift = drift
+    def render(self, served: list[Served]) -> str:
+        """The text exposition; what each part type serves and its drift assessment as they are now."""
+        with self._scraped.lock:
+            self._scraped.served = list(served)
         return generate_latest(self.registry).decode()
 
 

@@ -81,6 +81,7 @@ def model_event(
     m: LoadedModel,
     caller: str,
     *,
+    part_type: str,
     previous: float | None = None,
     operator: str | None = None,
     reason: str | None = None,
@@ -99,24 +100,31 @@ def model_event(
         reason=reason,
         revision=det.revision,
         threshold_section=json.dumps(det.manifest.get("threshold", {}), sort_keys=True),
+        part_type=part_type,
     )
 
 
 class ModelSlot:
-    """The current model and the rollback target. Every change computes the `Serving` it leads to, builds the
-    response with `respond(new, previous)` and records the event with `record(old, new, serving)`, all under one
-    lock and before anything changes: if either raises, the service serves what it served (all-or-nothing)."""
+    """One part type's current model and rollback target. Every change computes the `Serving` it leads to, builds
+    the response with `respond(new, previous)` and records the event with `record(old, new, serving)` (which returns
+    the event's seq), all under one lock and before anything changes: if either raises, the service serves what it
+    served (all-or-nothing). Changes other instances made arrive through `adopt`."""
 
-    def __init__(self, *, startup_sha256: str | None = None) -> None:
+    def __init__(self, part_type: str, *, startup_sha256: str | None = None) -> None:
+        self.part_type = part_type
         self._lock = threading.Lock()
         self._current: LoadedModel | None = None
         self._previous: LoadedModel | None = None
         self.startup_sha256 = startup_sha256  # the command-line bundle of this start (kept in `Serving`)
+        self.event_seq = 0  # the model event whose state this slot serves (instances converge on the newest)
 
     def get(self) -> LoadedModel:
         current = self._current  # one read: the request keeps this object whatever happens next
         if current is None:
-            raise ModelNotReady("no model is loaded yet; an admin can upload one with PUT /v1/model")
+            raise ModelNotReady(
+                f"part type {self.part_type!r} has no model yet; an admin can upload one with "
+                f"PUT /v1/part-types/{self.part_type}/model"
+            )
         return current
 
     @property
@@ -134,10 +142,20 @@ class ModelSlot:
                 current_sha256=new.detector.sha256,
                 previous_sha256=previous.detector.sha256 if previous else None,
                 startup_sha256=self.startup_sha256,
+                part_type=self.part_type,
             )
-            record(old, new, serving)
+            self.event_seq = max(self.event_seq, record(old, new, serving) or 0)
         self._current, self._previous = new, previous
         return result
+
+    def adopt(self, current: LoadedModel, previous: LoadedModel | None, *, event_seq: int) -> bool:
+        """Serves what another instance made current (event `event_seq`), unless this slot already serves that
+        event or a newer one; nothing is recorded (the other instance did). True if it changed anything."""
+        with self._lock:
+            if event_seq <= self.event_seq:
+                return False
+            self._current, self._previous, self.event_seq = current, previous, event_seq
+            return True
 
     def install(self, new: LoadedModel, *, record=None, respond=None, previous: LoadedModel | None = None):
         """Makes `new` current; the model it replaces (or, at start, `previous`) becomes the rollback target."""
@@ -149,7 +167,10 @@ class ModelSlot:
         """Swaps current and previous (so a second rollback undoes the first)."""
         with self._lock:
             if self._previous is None or self._current is None:
-                raise Problem(409, "there is no previous model to roll back to; PUT /v1/model keeps one")
+                raise Problem(
+                    409,
+                    f"part type {self.part_type!r} has no previous model to roll back to; a swap keeps one",
+                )
             return self._change(self._current, self._previous, self._current, record, respond)
 
     def update(self, change, *, record=None, respond=None):

@@ -15,12 +15,12 @@ import numpy as np
 import torch
 import torch.nn.functional as F
 from knowngood.service.deps import ServiceState
-from knowngood.service.files import HeatmapRecord, new_id
-from knowngood.service.model_slot import LoadedModel
+from knowngood.service.files import HeatmapRecord, heatmap_bytes, new_id
+from knowngood.service.model_slot import LoadedModel, ModelSlot
 from knowngood.service.overlay import overlay_base, overlay_png, overlay_size
 from knowngood.service.schemas import ImageInfo, InspectionCreated, InspectionOut, ModelRef, ReviewOut
 from knowngood.service.settings import Caller
-from knowngood.service.store import InspectionRecord, Review, to_iso, utc_now
+from knowngood.service.store import InspectionRecord, Review, StoredFiles, to_iso, utc_now
 from knowngood.training.data import decode_image, min_side_for
 from knowngood.training.detector import Prepared, verdict
 from knowngood.training.errors import BadImage
@@ -54,17 +54,18 @@ class Decoded:
     height: int
     width: int
     sha256: str
-    data: bytes | None  # the file, only when images are kept
     base: np.ndarray | None  # (C, h, w) the image at overlay size, only for ?heatmap=inline
 
 
 def inspect_uploads(
-    state: ServiceState, model: LoadedModel, caller: Caller, uploads: list[Upload], *, station: str | None, inline: bool
+    state: ServiceState, slot: ModelSlot, caller: Caller, uploads: list[Upload], *, station: str | None, inline: bool
 ) -> list[InspectionCreated]:
-    """Decodes (each in a decode slot), scores as one batch (in the scoring slot), stores. Raises BadImage /
+    """Decodes (each in a decode slot), scores as one batch (in the scoring slot) with the part type's current
+    model, stores rows, heatmaps, kept images and drift features in one transaction. Raises BadImage /
     ImageTooLarge naming the image at fault, or Problem(503) when the service is busy; then nothing is stored.
     Everything that can fail happens before the rows are committed; after the commit only best-effort work."""
     start = time.perf_counter()
+    model = slot.get()  # once: a swap meanwhile does not change the model under this request
     decoded = [_decode(state, model, u, inline=inline) for u in uploads]
     det = model.detector
     x = torch.cat([d.prepared.x for d in decoded])  # (B, C, S, S): images, or all tiles of all images
@@ -86,24 +87,39 @@ def inspect_uploads(
             raise BadImage(f"{u.name}: the model gives a non-finite score for this image; it is not recorded")
     ids = [new_id() for _ in uploads]
     now, elapsed = utc_now(), (time.perf_counter() - start) * 1000
+    verdicts = [verdict_for(float(score), model.detector.threshold) for score in scores]
+    kept = [_keep_image(state.settings, v, i) for v, i in zip(verdicts, ids)]
     records = [
-        _record(ids[i], now, u, decoded[i], float(scores[i]), model, caller, station, elapsed)
+        _record(ids[i], now, u, decoded[i], float(scores[i]), model, caller, station, elapsed, slot.part_type, kept[i])
         for i, u in enumerate(uploads)
     ]
     out = [_created(r, decoded[i], heats[i].numpy(), inline=inline) for i, r in enumerate(records)]
-    try:
-        for i, d in enumerate(decoded):
-            heat = HeatmapRecord(heat=heats[i].numpy(), view=d.view, height=d.height, width=d.width)
-            state.files.put_heatmap(ids[i], heat)
-            if d.data is not None:
-                state.files.put_image(ids[i], d.data)
-        state.store.add_inspections(records=records)  # committed before the response goes out
-    except BaseException:
-        for inspection_id in ids:
-            state.files.delete(inspection_id)
-        raise
-    _after_commit(state, model, records, features)
+    files = [
+        StoredFiles(
+            heatmap=heatmap_bytes(HeatmapRecord(heat=heats[i].numpy(), view=d.view, height=d.height, width=d.width)),
+            image=_reread(uploads[i]) if kept[i] else None,
+            embedding=np.asarray(features[i], dtype=np.float32).tobytes(),
+        )
+        for i, d in enumerate(decoded)
+    ]
+    state.store.add_inspections(records=records, files=files)  # one transaction, before the response goes out
+    _after_commit(state, slot, records)
     return out
+
+
+def _keep_image(settings, verdict: str, inspection_id: str) -> bool:
+    """Flagged parts' images are kept (what operators review and retraining needs); a share of passed ones when
+    asked, chosen by the random id, so the sample is unbiased."""
+    if settings.keep_images != "flagged":
+        return settings.keep_images == "all"
+    return verdict == "flag" or int(inspection_id[:8], 16) / 2**32 < settings.keep_passed_share
+
+
+def _reread(upload: Upload) -> bytes:
+    """The upload as sent, read again from its spooled file only when it is kept: no request holds its bytes
+    while it waits for the scoring pass."""
+    upload.file.seek(0)
+    return upload.file.read()
 
 
 def _decode(state: ServiceState, model: LoadedModel, upload: Upload, *, inline: bool) -> Decoded:
@@ -120,17 +136,15 @@ def _decode(state: ServiceState, model: LoadedModel, upload: Upload, *, inline: 
             height=int(h),
             width=int(w),
             sha256=hashlib.sha256(data).hexdigest(),
-            data=data if state.files.keep_images else None,
             base=overlay_base(image) if inline else None,
         )
 
 
-def _after_commit(state: ServiceState, model: LoadedModel, records: list[InspectionRecord], features) -> None:
-    """Drift window and metrics: the rows are committed, so a failure here is logged, never answered."""
+def _after_commit(state: ServiceState, slot: ModelSlot, records: list[InspectionRecord]) -> None:
+    """Metrics: the rows are committed, so a failure here is logged, never answered."""
     try:
-        model.drift.add(features)
         for r in records:
-            state.metrics.observe_inspection(r.verdict, r.score)
+            state.metrics.observe_inspection(slot.part_type, r.verdict, r.score)
     except Exception:
         log.exception("after committing inspections %s", ", ".join(r.id for r in records))
 
@@ -145,11 +159,15 @@ def _record(
     caller: Caller,
     station: str | None,
     elapsed: float,
+    part_type: str,
+    image_kept: bool,
 ) -> InspectionRecord:
     det = model.detector
     return InspectionRecord(
         id=inspection_id,
         time=now,
+        part_type=part_type,
+        image_kept=image_kept,
         station=station,
         part_id=upload.part_id,
         caller=caller.name,
@@ -192,6 +210,8 @@ def inspection_out(r: InspectionRecord) -> InspectionOut:
     return InspectionOut(
         id=r.id,
         time=dt.datetime.fromisoformat(r.time),
+        part_type=r.part_type,
+        image_kept=r.image_kept and r.files_kept,
         station=r.station,
         part_id=r.part_id,
         verdict=r.verdict,
@@ -222,8 +242,6 @@ def prune(state: ServiceState) -> int:
     before = to_iso(dt.datetime.now(dt.timezone.utc) - dt.timedelta(days=s.retention_days))
     total = 0
     while ids := state.store.expired_files(keep=s.retention_count, before=before):
-        for inspection_id in ids:
-            state.files.delete(inspection_id)
         state.store.mark_files_deleted(inspection_ids=ids)
         total += len(ids)
     return total

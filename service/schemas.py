@@ -67,6 +67,7 @@ class InspectionOut(BaseModel):
 
     id: str
     time: dt.datetime
+    part_type: str = Field(description="the part type inspected: which model gave the verdict")
     station: str | None
     part_id: str | None
     verdict: Verdict
@@ -79,6 +80,9 @@ class InspectionOut(BaseModel):
         "them), measured before the audit store write"
     )
     heatmap_url: str | None = Field(description="overlay PNG; null once retention has deleted the heatmap")
+    image_kept: bool = Field(
+        description="the uploaded file is kept (GET .../original): flagged parts by default, a share of passed ones"
+    )
     review: ReviewOut | None = Field(description="the latest review: the current label (null: not reviewed)")
     review_count: int = Field(description="reviews kept for this inspection (GET .../reviews lists them)")
 
@@ -144,7 +148,13 @@ class ThresholdInfo(BaseModel):
     set_at: str | None
 
 
+PartTypeName = Field(
+    pattern=r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$", description="a part type's name (letters, digits, '_', '.', '-')"
+)
+
+
 class ModelOut(BaseModel):
+    part_type: str = Field(description="the part type this model inspects")
     id: str = Field(description="model id: derived from the weights")
     revision: str = Field(description="8 hex digits of the threshold section: changes with each threshold change")
     sha256: str
@@ -154,12 +164,13 @@ class ModelOut(BaseModel):
     runtime: Literal["onnx", "torch"]
     loaded_at: dt.datetime
     source: str = Field(description="where this model came from: startup file, upload or rollback")
-    previous: ModelRef | None = Field(description="what POST /v1/model/rollback would restore")
+    previous: ModelRef | None = Field(description="what a rollback of this part type would restore")
     manifest: dict = Field(description="the bundle's manifest.json, as loaded (threshold changes included)")
 
 
 class ModelEventOut(BaseModel):
     time: dt.datetime
+    part_type: str
     kind: Literal["load", "swap", "rollback", "threshold"]
     model: ModelRef
     threshold: float
@@ -179,6 +190,7 @@ class DriftOut(BaseModel):
     status: Status
     drifting: bool | None = Field(description="null while there is not enough to say")
     detail: str
+    part_type: str
     model_id: str
     images: int = Field(description="production images in the window for this model")
     needed: int = Field(description="images needed before drift is assessed")
@@ -189,13 +201,28 @@ class DriftOut(BaseModel):
     limit: float | None = Field(description="drifting when distance > limit")
 
 
+class PartTypeOut(BaseModel):
+    name: str
+    model: ModelRef
+    threshold: float
+    previous: ModelRef | None = Field(description="what a rollback would restore")
+
+
+class PartTypeList(BaseModel):
+    """The part types served, by name; each has its own model, threshold, rollback target and drift window."""
+
+    items: list[PartTypeOut]
+    count: int
+
+
 class HealthOut(BaseModel):
     status: Literal["ok"]
 
 
 class ReadyOut(BaseModel):
     ready: bool
-    model_id: str | None
+    model_id: str | None = Field(description="the model, when exactly one part type is served")
+    part_types: list[str] = Field(default_factory=list, description="the part types served")
     detail: str
 
 

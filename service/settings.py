@@ -10,6 +10,7 @@ from functools import lru_cache
 from pathlib import Path
 from typing import Annotated, Literal
 
+from knowngood.service.store_tables import DEFAULT_PART_TYPE
 from knowngood.training.data import MAX_PIXELS, MIN_SIDE
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
@@ -17,6 +18,7 @@ from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 Role = Literal["station", "admin"]
 MIN_TOKEN_LENGTH = 12
 TokenList = Annotated[list[str], NoDecode]  # comma-separated in the environment, not JSON
+PART_TYPE = r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$"  # a part type's name: it appears in URLs and metric labels
 
 
 @dataclass(frozen=True)
@@ -37,8 +39,11 @@ class Settings(BaseSettings):
     model_config = SettingsConfigDict(env_prefix="KNOWNGOOD_", extra="forbid", protected_namespaces=())
 
     model_path: Path | None = None  # bundle loaded at start; None = not ready until PUT /v1/model
-    db: Path = Path("knowngood.db")  # SQLite audit store (WAL)
-    data_dir: Path = Path("knowngood-data")  # heatmaps, optional images, uploaded bundles
+    part_type: str = Field(DEFAULT_PART_TYPE, pattern=PART_TYPE)  # the part type the command-line bundle serves
+    db: Path = Path("knowngood.db")  # SQLite audit store (WAL), unless database_url is set
+    database_url: str | None = None  # postgresql://user@host/db (shared by instances) or an SQLite path
+    data_dir: Path = Path("knowngood-data")  # read only for what versions before 0.2 kept there (heatmaps, bundles)
+    sync_seconds: float = Field(2.0, gt=0, le=60)  # how often an instance follows the models others changed
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
     station_tokens: TokenList = []  # may inspect, review and read
@@ -54,13 +59,35 @@ class Settings(BaseSettings):
     keep_bundles: int = Field(5, ge=1)  # uploaded bundles kept besides the current and previous model
     torch_threads: int = Field(2, ge=1, le=64)
     onnx: bool = True  # score with ONNX Runtime (same graph, a few times faster on CPU)
-    keep_images: bool = False  # also keep each uploaded image file (heatmaps are always kept)
+    keep_images: Literal["none", "flagged", "all"] = "flagged"  # uploaded files kept (heatmaps always are)
+    keep_passed_share: float = Field(0.0, ge=0, le=1)  # with "flagged": this share of passed parts' images too
     retention_count: int = Field(10_000, ge=1)  # inspections whose files are kept; older files are deleted
     retention_days: float = Field(90.0, gt=0)  # files older than this are deleted; audit rows are kept
     drift_window: int = Field(200, ge=2)  # recent production images compared with the training reference
     drift_min_images: int = Field(20, ge=2)  # fewer than this: drift says "not enough images"
     drift_sigmas: float = Field(3.0, gt=0)  # drifting when distance > reference mean + this many std
     log_level: Literal["critical", "error", "warning", "info", "debug"] = "info"
+
+    @field_validator("keep_images", mode="before")
+    @classmethod
+    def _keep_images(cls, value):
+        """true / false (the setting before 0.2) mean all / none."""
+        if isinstance(value, bool):
+            return "all" if value else "none"
+        if isinstance(value, str) and value.strip().lower() in ("true", "false", "1", "0", "yes", "no"):
+            return "all" if value.strip().lower() in ("true", "1", "yes") else "none"
+        return value
+
+    @field_validator("database_url")
+    @classmethod
+    def _database_url(cls, value: str | None) -> str | None:
+        if value is not None and not value.strip():
+            return None
+        return value
+
+    def store_url(self) -> str:
+        """What the audit store opens: KNOWNGOOD_DATABASE_URL, else the SQLite file `db`."""
+        return self.database_url or str(self.db)
 
     @field_validator("station_tokens", "admin_tokens", mode="before")
     @classmethod

@@ -9,7 +9,7 @@ import numpy as np
 from fastapi import APIRouter, BackgroundTasks, Depends, File, Form, Query, Request, Response, UploadFile
 from fastapi.exceptions import RequestValidationError
 from knowngood.service import problems
-from knowngood.service.deps import CurrentModel, ServiceState, State, StationCaller, Window
+from knowngood.service.deps import ServiceState, State, StationCaller, Window
 from knowngood.service.overlay import overlay_png
 from knowngood.service.pipeline import Upload, inspect_uploads, inspection_out, prune, prune_due, review_out
 from knowngood.service.problems import Problem
@@ -23,6 +23,7 @@ from knowngood.service.schemas import (
     ReviewList,
     Verdict,
 )
+from knowngood.service.settings import PART_TYPE
 from knowngood.service.store import InspectionFilter, InspectionRecord
 from knowngood.training.data import decode_image
 from knowngood.training.errors import KnowngoodError
@@ -35,6 +36,12 @@ PartIds = Annotated[
     Form(description="none, or one per image in order"),
 ]
 QueryText = Annotated[str | None, Query(max_length=200, pattern=NO_CONTROL, description="exact match")]
+PartType = Annotated[
+    str | None,
+    Form(
+        max_length=64, pattern=PART_TYPE, description="the part type to inspect as; may be omitted while one is served"
+    ),
+]
 MAX_OFFSET = 2**53  # far beyond any store, and still an integer SQLite and JSON both hold exactly
 Inline = Annotated[Literal["inline"] | None, Query(description="'inline' adds the overlay PNG as base64")]
 IMAGE_HELP = "PNG, JPEG, BMP or TIFF (8 or 16 bit; gray, RGB or CMYK); checked by decoding, not by name"
@@ -75,21 +82,22 @@ def _after(state: ServiceState, background: BackgroundTasks, count: int) -> None
     "",
     response_model=InspectionCreated,
     responses=problems.responses(400, 401, 413, 422, 503),
-    dependencies=[_once("image", "part_id", "station")],
+    dependencies=[_once("image", "part_id", "station", "part_type")],
 )
 def create_inspection(
     state: State,
     caller: StationCaller,
-    model: CurrentModel,
     background: BackgroundTasks,
     image: Annotated[UploadFile, File(description=IMAGE_HELP)],
+    part_type: PartType = None,
     part_id: Text = None,
     station: Text = None,
     heatmap: Inline = None,
 ) -> InspectionCreated:
     """Inspect one image: verdict, anomaly score and threshold, committed to the audit store before the reply."""
+    slot = state.parts.resolve(part_type)
     upload = Upload(name=_name(image, "image"), file=image.file, part_id=part_id)
-    [out] = inspect_uploads(state, model, caller, [upload], station=station, inline=heatmap == "inline")
+    [out] = inspect_uploads(state, slot, caller, [upload], station=station, inline=heatmap == "inline")
     _after(state, background, 1)
     return out
 
@@ -98,20 +106,21 @@ def create_inspection(
     "/batch",
     response_model=BatchCreated,
     responses=problems.responses(400, 401, 413, 422, 503),
-    dependencies=[_once("station")],
+    dependencies=[_once("station", "part_type")],
 )
 def create_batch(
     state: State,
     caller: StationCaller,
-    model: CurrentModel,
     background: BackgroundTasks,
     images: Annotated[list[UploadFile], File(description=f"one field per image; {IMAGE_HELP}")],
+    part_type: PartType = None,
     part_id: PartIds = None,
     station: Text = None,
     heatmap: Inline = None,
 ) -> BatchCreated:
     """Inspect several images scored as one tensor batch; all are stored, or none if any is refused."""
     start = time.perf_counter()
+    slot = state.parts.resolve(part_type)
     limit = state.settings.max_batch
     if len(images) > limit:
         raise Problem(422, f"{len(images)} images in one batch; the limit is {limit} (KNOWNGOOD_MAX_BATCH)")
@@ -122,7 +131,7 @@ def create_batch(
         Upload(name=_name(f, f"images[{i}]"), file=f.file, part_id=parts[i] if parts else None)
         for i, f in enumerate(images)
     ]
-    items = inspect_uploads(state, model, caller, uploads, station=station, inline=heatmap == "inline")
+    items = inspect_uploads(state, slot, caller, uploads, station=station, inline=heatmap == "inline")
     _after(state, background, len(items))
     return BatchCreated(items=items, elapsed_ms=(time.perf_counter() - start) * 1000)
 
@@ -132,6 +141,7 @@ def list_inspections(
     state: State,
     caller: StationCaller,
     window: Window,
+    part_type: Annotated[str | None, Query(max_length=64, pattern=PART_TYPE, description="exact match")] = None,
     station: QueryText = None,
     part_id: QueryText = None,
     verdict: Verdict | None = None,
@@ -141,7 +151,13 @@ def list_inspections(
 ) -> InspectionList:
     """Inspections matching every filter given, newest first, paged; verdict=flag&reviewed=false is the review queue."""
     where = InspectionFilter(
-        verdict=verdict, station=station, part_id=part_id, reviewed=reviewed, since=window.since, until=window.until
+        part_type=part_type,
+        verdict=verdict,
+        station=station,
+        part_id=part_id,
+        reviewed=reviewed,
+        since=window.since,
+        until=window.until,
     )
     records, total = state.store.find_inspections(where=where, limit=limit, offset=offset)
     return InspectionList(
@@ -188,6 +204,32 @@ def _picture(state: ServiceState, record: InspectionRecord, *, tinted: bool) -> 
     heatmap = heat.heat if tinted else np.zeros_like(heat.heat)  # no heat, no tint: the image alone, same geometry
     png = overlay_png(image, heatmap, height=heat.height, width=heat.width, threshold=record.threshold)
     return Response(png, media_type="image/png", headers={"Cache-Control": "private, max-age=86400"})
+
+
+@router.get(
+    "/{inspection_id}/original",
+    response_class=Response,
+    response_model=None,
+    responses={
+        200: {"content": {"application/octet-stream": {}}, "description": "the file as uploaded"},
+        **problems.responses(401, 404, 422),
+    },
+)
+def get_original(state: State, caller: StationCaller, inspection_id: str) -> Response:
+    """The uploaded file as sent (kept for flagged parts by default): what `knowngood export-reviews` downloads."""
+    record = _find(state, inspection_id)
+    data = state.files.get_image(record.id) if record.files_kept else None
+    if data is None:
+        raise Problem(
+            404,
+            f"the image of inspection {record.id} is not kept (KNOWNGOOD_KEEP_IMAGES, KNOWNGOOD_KEEP_PASSED_SHARE, "
+            "retention)",
+        )
+    return Response(
+        data,
+        media_type="application/octet-stream",
+        headers={"Content-Disposition": f'attachment; filename="{record.id}"', "Cache-Control": "private"},
+    )
 
 
 @router.post("/{inspection_id}/review", response_model=InspectionOut, responses=problems.responses(401, 404, 422))

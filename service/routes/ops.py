@@ -8,11 +8,14 @@ from collections.abc import Iterator
 from dataclasses import fields
 from pathlib import Path
 
+import numpy as np
 from fastapi import APIRouter
 from fastapi.responses import FileResponse, HTMLResponse, JSONResponse, PlainTextResponse, Response, StreamingResponse
 from knowngood.service import problems
-from knowngood.service.deps import CurrentModel, ServiceState, State, StationCaller, Window
-from knowngood.service.metrics import CONTENT_TYPE
+from knowngood.service.deps import ServiceState, State, StationCaller, Window
+from knowngood.service.drift import DriftReport
+from knowngood.service.metrics import CONTENT_TYPE, Served
+from knowngood.service.model_slot import LoadedModel, ModelSlot
 from knowngood.service.overlay import legend_png
 from knowngood.service.schemas import DriftOut, HealthOut, ReadyOut
 from knowngood.service.settings import Caller, shown_to
@@ -36,12 +39,28 @@ async def healthz() -> HealthOut:
 
 @router.get("/readyz", response_model=ReadyOut, responses={503: {"model": ReadyOut, "description": "no model yet"}})
 async def readyz(state: State) -> JSONResponse:
-    """Readiness: 200 once a model is loaded, 503 until then (no token needed)."""
-    m = state.slot.current
-    if m is None:
+    """Readiness: 200 once a part type has a model, 503 until then (no token needed)."""
+    slots = state.parts.slots()
+    if not slots:
         body = ReadyOut(ready=False, model_id=None, detail="no model loaded; PUT /v1/model uploads one")
         return JSONResponse(body.model_dump(), status_code=503)
-    return JSONResponse(ReadyOut(ready=True, model_id=m.detector.model_id, detail="serving").model_dump())
+    only = slots[0].current.detector.model_id if len(slots) == 1 else None
+    body = ReadyOut(ready=True, model_id=only, part_types=[s.part_type for s in slots], detail="serving")
+    return JSONResponse(body.model_dump())
+
+
+def window(state: ServiceState, slot: ModelSlot, m: LoadedModel) -> np.ndarray:
+    """The drift window of a part type's current model: the features of its latest inspections, from the store
+    (every instance's, kept across restarts), oldest first."""
+    rows = state.store.embeddings(
+        part_type=slot.part_type, model_sha256=m.detector.sha256, limit=state.settings.drift_window
+    )
+    return np.stack([np.frombuffer(r, dtype=np.float32) for r in rows]) if rows else np.zeros((0, 0))
+
+
+def assess(state: ServiceState, slot: ModelSlot, m: LoadedModel) -> DriftReport:
+    s = state.settings
+    return m.drift.assess(min_images=s.drift_min_images, sigmas=s.drift_sigmas, features=window(state, slot, m))
 
 
 @router.get(
@@ -54,30 +73,29 @@ async def readyz(state: State) -> JSONResponse:
     },
 )
 def metrics(state: State, caller: StationCaller) -> PlainTextResponse:
-    """Prometheus metrics: requests, latency, verdicts, model and revision, scores, drift state (station token)."""
-    m = state.slot.current
-    s = state.settings
-    text = state.metrics.render(
-        model_id=m.detector.model_id if m else None,
-        model_sha256=m.detector.sha256 if m else None,
-        model_revision=m.detector.revision if m else None,
-        threshold=m.detector.threshold if m else None,
+    """Prometheus metrics by part type: requests, latency, verdicts, model and revision, scores, drift state."""
+    served = []
+    for slot in state.parts.slots():
+        m = slot.current
+        if m is None:
+            continue
+        det = m.detector
         # plain `def`: the assessment (a Fréchet distance) runs in the thread pool, not on the event loop
-        drift=m.drift.assess(min_images=s.drift_min_images, sigmas=s.drift_sigmas) if m else None,
-    )
-    return PlainTextResponse(text, media_type=CONTENT_TYPE)
+        served.append(
+            Served(slot.part_type, det.model_id, det.sha256, det.revision, det.threshold, assess(state, slot, m))
+        )
+    return PlainTextResponse(state.metrics.render(served), media_type=CONTENT_TYPE)
 
 
-@router.get("/v1/drift", response_model=DriftOut, responses=problems.responses(401, 503))
-def drift(state: State, caller: StationCaller, model: CurrentModel) -> DriftOut:
-    """Drift: Fréchet distance of recent production images to the training reference, against its small-n baseline."""
-    s = state.settings
-    r = model.drift.assess(min_images=s.drift_min_images, sigmas=s.drift_sigmas)
+def drift_out(state: ServiceState, slot: ModelSlot) -> DriftOut:
+    m = slot.get()
+    r = assess(state, slot, m)
     return DriftOut(
         status=r.status,
         drifting=r.drifting,
         detail=r.detail,
-        model_id=model.detector.model_id,
+        part_type=slot.part_type,
+        model_id=m.detector.model_id,
         images=r.images,
         needed=r.needed,
         n=r.n,
@@ -86,6 +104,12 @@ def drift(state: State, caller: StationCaller, model: CurrentModel) -> DriftOut:
         reference_std=r.reference_std,
         limit=r.limit,
     )
+
+
+@router.get("/v1/drift", response_model=DriftOut, responses=problems.responses(401, 409, 503))
+def drift(state: State, caller: StationCaller) -> DriftOut:
+    """Drift of the one part type served (see /v1/part-types/{name}/drift): recent images vs the training images."""
+    return drift_out(state, state.parts.only())
 
 
 def _cell(value):

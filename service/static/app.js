@@ -11,10 +11,13 @@ const DRIFT_TEXT = {
   not_enough_images: "not enough production images yet to judge",
   no_reference: "this model carries no drift reference",
 };
+const NO_CHOICE = "choose a part type to see its drift";
 let current = null; // the inspection shown in the result panel
 let urls = { original: null, overlay: null }; // object URLs of the shown images, revoked when replaced
 let offset = 0; // paging of the recent list
 let timer = null;
+let partTypes = []; // names of the part types served, from GET /v1/part-types
+let partTypeChosen = false; // the operator picked the part type (one served: the page picks it, and says nothing)
 
 function token() { return store.getItem("knowngood.token") || ""; }
 
@@ -64,7 +67,7 @@ async function signIn(event) {
   store.setItem("knowngood.token", $("token").value.trim());
   store.setItem("knowngood.operator", $("operator").value.trim());
   try {
-    await refreshModel();
+    await refreshPartTypes();
   } catch (error) {
     store.removeItem("knowngood.token");
     say("Sign-in failed: " + error.message);
@@ -90,11 +93,61 @@ function showApp(on) {
   if (on) { timer = setInterval(() => { if ($("watch").checked) refresh(); }, 5000); }
 }
 
+// ---- part types --------------------------------------------------------------------------------------------
+
+function partType() { return $("part-type").value; }
+function partTypePath(name) { return "/v1/part-types/" + encodeURIComponent(name); }
+function severalPartTypes() { return partTypes.length > 1; }
+
+function option(value, text) {
+  const o = document.createElement("option");
+  o.value = value;
+  o.textContent = text;
+  return o;
+}
+
+// rebuilds a select's options only when the names change (a rebuild would close it under the operator's pointer);
+// the choice survives a rebuild while its part type is still served
+function fillSelect(select, first, names) {
+  const wanted = [first.value, ...names].join("\n");
+  if ([...select.options].map((o) => o.value).join("\n") === wanted) return;
+  const kept = select.value;
+  select.replaceChildren(option(first.value, first.text), ...names.map((n) => option(n, n)));
+  select.value = names.includes(kept) ? kept : first.value;
+}
+
+// one part type: chosen for the operator and out of sight, as before part types existed; several: the operator
+// chooses, and a part type the page chose alone is dropped, so no part is inspected as a type nobody picked
+async function refreshPartTypes() {
+  const list = await api("/v1/part-types");
+  partTypes = (list.items || []).map((p) => p.name);
+  fillSelect($("part-type"), { value: "", text: "choose…" }, partTypes);
+  if (partTypes.length === 1) $("part-type").value = partTypes[0];
+  else if (!partTypeChosen) $("part-type").value = "";
+  if (!partType()) showKept("part-type", false);
+  $("part-type-field").hidden = !severalPartTypes();
+  fillSelect($("f-part-type"), { value: "", text: "all" }, partTypes);
+  $("f-part-type-field").hidden = !severalPartTypes() && !$("f-part-type").value;
+}
+
+function choosePartType() {
+  partTypeChosen = Boolean(partType());
+  showKept("part-type", false);
+  Promise.allSettled([refreshModel(), refreshDrift()]); // each shows its own state; nothing else waits for them
+}
+
+// the header: the chosen part type's model (one served: its model, as before part types existed)
 async function refreshModel() {
-  const m = await api("/v1/model");
+  const name = partType();
+  if (!name) {
+    $("model-info").textContent = partTypes.length ? partTypes.length + " part types: choose one to inspect"
+      : "no model loaded yet";
+    return;
+  }
+  const m = await api(partTypePath(name) + "/model");
   const threshold = m.threshold && typeof m.threshold === "object" ? m.threshold.value : m.threshold;
-  $("model-info").textContent = "model " + dash(m.id) + " rev " + dash(m.revision) + " · threshold " + fmt(threshold)
-    + " · " + dash(m.runtime);
+  $("model-info").textContent = (severalPartTypes() ? "part type " + name + " · " : "") + "model " + dash(m.id)
+    + " rev " + dash(m.revision) + " · threshold " + fmt(threshold) + " · " + dash(m.runtime);
 }
 
 // ---- inspect -----------------------------------------------------------------------------------------------
@@ -103,20 +156,24 @@ async function inspect(event) {
   event.preventDefault();
   const file = $("file").files[0];
   if (!file) { say("Choose an image first."); return; }
+  const kind = partType();
+  if (!kind && severalPartTypes()) { say("Choose the part type first."); return; }
   clearResult(); // nothing of the previous part may stay on screen beside this file's name
   say("");
   const form = new FormData();
   form.append("image", file);
   const station = $("station").value.trim();
+  if (kind) form.append("part_type", kind);
   if ($("part-id").value.trim()) form.append("part_id", $("part-id").value.trim());
   if (station) form.append("station", station);
   $("inspect-btn").disabled = true;
   try {
     const result = await api("/v1/inspections", { method: "POST", body: form });
-    // the next part must not inherit this one's id or file; the station stays, and says so
+    // the next part must not inherit this one's id or file; the station and the part type stay, and say so
     $("part-id").value = "";
     $("file").value = "";
-    showStationKept(station);
+    showKept("station", Boolean(station));
+    showKept("part-type", Boolean(kind));
     await show(result, file);
     await refresh();
   } catch (error) {
@@ -127,10 +184,10 @@ async function inspect(event) {
   }
 }
 
-// the station stays in its field for the next part; the tag says so until the operator changes it
-function showStationKept(station) {
-  $("station-kept").hidden = !station;
-  $("station").classList.toggle("kept", Boolean(station));
+// the station and the part type stay in their fields for the next part; a tag says so until the operator changes it
+function showKept(field, on) {
+  $(field + "-kept").hidden = !on;
+  $(field).classList.toggle("kept", on);
 }
 
 function setImage(which, blob) {
@@ -143,8 +200,8 @@ function setImage(which, blob) {
 function clearResult() {
   current = null;
   $("result").hidden = true;
-  for (const id of ["result-id", "verdict", "score", "threshold", "result-model", "result-revision", "result-meta",
-    "review-state", "legend-mid", "legend-high"]) $(id).textContent = "";
+  for (const id of ["result-id", "result-part-type", "verdict", "score", "threshold", "result-model",
+    "result-revision", "result-meta", "review-state", "legend-mid", "legend-high"]) $(id).textContent = "";
   $("verdict").className = "verdict";
   $("review-history").replaceChildren();
   setImage("original", null);
@@ -156,6 +213,7 @@ async function show(insp, localFile = null) {
   current = insp;
   $("result").hidden = false;
   $("result-id").textContent = insp.id;
+  $("result-part-type").textContent = dash(insp.part_type);
   const verdict = $("verdict");
   verdict.textContent = dash(insp.verdict);
   verdict.className = "verdict " + (insp.verdict || "");
@@ -274,6 +332,7 @@ function pageSize() { return Number($("f-size").value) || 20; }
 function recentQuery() {
   const q = new URLSearchParams();
   const add = (name, value) => { if (value) q.set(name, value); };
+  add("part_type", $("f-part-type").value);
   add("station", $("f-station").value.trim());
   add("part_id", $("f-part").value.trim());
   add("verdict", $("f-verdict").value);
@@ -294,26 +353,41 @@ function showPage(items, total) {
   $("page-next").disabled = known ? offset + items.length >= total : items.length < pageSize();
 }
 
-function showDrift(drift) {
+// drift is judged per part type: the banner shows the chosen one's (why: the text when there is none to show)
+function showDrift(drift, why = "") {
   const status = drift && drift.status ? drift.status : "unknown";
   $("drift-banner").className = "drift-banner " + status;
   $("drift-badge").className = "drift-badge " + status;
   $("drift-badge").textContent = "drift: " + (drift && drift.status ? drift.status.replace(/_/g, " ") : DASH);
-  let text = DRIFT_TEXT[status] || "drift state unavailable";
+  let text = why || DRIFT_TEXT[status] || "drift state unavailable";
   if (status === "not_enough_images" && !missing(drift.images) && !missing(drift.needed)) {
     text += " (" + drift.images + " of " + drift.needed + ")";
   }
+  if (drift && drift.part_type && severalPartTypes()) text = "part type " + drift.part_type + ": " + text;
   $("drift-text").textContent = text;
   $("drift-detail").textContent = drift && drift.detail ? drift.detail : "";
 }
 
+function driftOf(name) { return name ? api(partTypePath(name) + "/drift") : Promise.resolve(null); }
+
+async function refreshDrift() {
+  const name = partType();
+  try {
+    showDrift(await driftOf(name), name ? "" : NO_CHOICE);
+  } catch (error) {
+    showDrift(null);
+  }
+}
+
 async function refresh() {
+  const [types] = await Promise.allSettled([refreshPartTypes()]); // first: the lists below use the choice
+  const name = partType();
   const [queue, recent, drift] = await Promise.allSettled([
     api("/v1/inspections?verdict=flag&reviewed=false&limit=100"),
     api(recentQuery()),
-    api("/v1/drift"),
+    driftOf(name),
   ]);
-  const failed = [queue, recent, drift].find((r) => r.status === "rejected");
+  const failed = [types, queue, recent, drift].find((r) => r.status === "rejected");
   if (failed && failed.reason.status === 401) {
     say("Signed out: " + failed.reason.message);
     signOut();
@@ -321,17 +395,18 @@ async function refresh() {
   }
   if (queue.status === "fulfilled") {
     const q = queue.value, count = q.total ?? q.count ?? q.items.length;
-    fillTable($("queue-rows"), q.items, [(i) => when(i.time), (i) => i.part_id, (i) => i.station,
-      (i) => fmt(i.score), (i) => fmt(i.threshold), modelLabel]);
+    fillTable($("queue-rows"), q.items, [(i) => when(i.time), (i) => i.part_type, (i) => i.part_id,
+      (i) => i.station, (i) => fmt(i.score), (i) => fmt(i.threshold), modelLabel]);
     $("queue-count").textContent = String(count);
     $("queue-empty").hidden = count > 0;
   }
   if (recent.status === "fulfilled") {
-    fillTable($("recent-rows"), recent.value.items, [(i) => when(i.time), (i) => i.part_id, (i) => i.station,
-      (i) => i.verdict, (i) => fmt(i.score), modelLabel, (i) => (i.review ? i.review.label : null)]);
+    fillTable($("recent-rows"), recent.value.items, [(i) => when(i.time), (i) => i.part_type, (i) => i.part_id,
+      (i) => i.station, (i) => i.verdict, (i) => fmt(i.score), modelLabel,
+      (i) => (i.review ? i.review.label : null)]);
     showPage(recent.value.items, recent.value.total);
   }
-  showDrift(drift.status === "fulfilled" ? drift.value : null);
+  showDrift(drift.status === "fulfilled" ? drift.value : null, name ? "" : NO_CHOICE);
   if (failed) say("Refresh failed: " + failed.reason.message);
   try { await refreshModel(); } catch (error) { /* the header keeps the last model it showed */ }
 }
@@ -343,7 +418,9 @@ function applyFilters(event) {
 }
 
 function clearFilters() {
-  for (const id of ["f-station", "f-part", "f-verdict", "f-reviewed", "f-since", "f-until"]) $(id).value = "";
+  for (const id of ["f-part-type", "f-station", "f-part", "f-verdict", "f-reviewed", "f-since", "f-until"]) {
+    $(id).value = "";
+  }
   applyFilters();
 }
 
@@ -358,7 +435,8 @@ document.addEventListener("DOMContentLoaded", () => {
   $("sign-out").addEventListener("click", signOut);
   $("review-good").addEventListener("click", () => review("good"));
   $("review-defective").addEventListener("click", () => review("defective"));
-  $("station").addEventListener("input", () => showStationKept(""));
+  $("station").addEventListener("input", () => showKept("station", false));
+  $("part-type").addEventListener("change", choosePartType);
   $("original").addEventListener("click", () => zoom("original"));
   $("overlay").addEventListener("click", () => zoom("overlay"));
   $("zoom-original").addEventListener("click", () => zoom("original"));
@@ -372,6 +450,6 @@ document.addEventListener("DOMContentLoaded", () => {
   $("page-next").addEventListener("click", () => turnPage(1));
   $("operator").value = store.getItem("knowngood.operator") || "";
   if (token()) {
-    refreshModel().then(() => { showApp(true); return refresh(); }).catch(() => signOut());
+    refreshPartTypes().then(() => { showApp(true); return refresh(); }).catch(() => signOut());
   }
 });

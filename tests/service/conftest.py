@@ -4,9 +4,11 @@ Plain helpers live in service_testkit.py."""
 from __future__ import annotations
 
 import dataclasses
+import os
 import warnings
 from pathlib import Path
 
+import postgres_server
 import pytest
 import torch
 from knowngood.service.app import create_app
@@ -88,3 +90,25 @@ def second_bundle(tmp_path_factory, tiny_bundle) -> Path:
     path = tmp_path_factory.mktemp("second") / "second.kgm"
     bundle.save(other, frechet, path)
     return path
+
+
+@pytest.fixture(scope="session")
+def postgres():
+    """A throwaway PostgreSQL server for the session. Skipped where none can be started, except when
+    KNOWNGOOD_REQUIRE_POSTGRES=1 (CI), where that is a failure."""
+    try:
+        server = postgres_server.start()
+    except RuntimeError as exc:
+        if os.environ.get("KNOWNGOOD_REQUIRE_POSTGRES") == "1":
+            pytest.fail(f"KNOWNGOOD_REQUIRE_POSTGRES=1 but no PostgreSQL server could be started: {exc}")
+        pytest.skip(f"no PostgreSQL server can be started here: {exc}")
+    yield server
+    server.stop()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def store_url(request, tmp_path) -> str:
+    """A fresh audit database: an SQLite file, then a new database on the PostgreSQL server."""
+    if request.param == "sqlite":
+        return str(tmp_path / "audit.db")
+    return request.getfixturevalue("postgres").new_database()

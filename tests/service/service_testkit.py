@@ -73,8 +73,11 @@ class LiveServer:
                 self.proc.wait(10)
 
 
-def start_server(bundle: Path, folder: Path, *, port: int | None = None, extra_env: dict | None = None) -> LiveServer:
-    """Runs `knowngood serve` (the installed console script) and waits until /readyz says 200."""
+def start_server(
+    bundle: Path, folder: Path, *, port: int | None = None, extra_env: dict | None = None, db: str | None = None
+) -> LiveServer:
+    """Runs `knowngood serve` (the installed console script) and waits until /readyz says 200. `db`: the audit
+    store's URL (default: an SQLite file in `folder`)."""
     folder.mkdir(parents=True, exist_ok=True)
     port = port or free_port()
     log = folder / f"server-{port}.log"
@@ -86,7 +89,7 @@ def start_server(bundle: Path, folder: Path, *, port: int | None = None, extra_e
         "--port",
         str(port),
         "--db",
-        str(folder / "audit.db"),
+        db or str(folder / "audit.db"),
         "--data-dir",
         str(folder / "data"),
     ]

@@ -7,23 +7,26 @@ import threading
 from dataclasses import replace
 
 import pytest
-from knowngood.service import pipeline
+from knowngood.service import pipeline, store_migrate
 from knowngood.service.store import (
     SCHEMA_VERSION,
     AuditStore,
     InspectionFilter,
     InspectionRecord,
     ModelEvent,
+    Serving,
     SqliteStore,
-    connect,
-    count_selected,
+    Store,
+    StoredFiles,
     create_schema,
-    insert_inspections,
-    select_inspections,
+    database_url,
     utc_now,
 )
+from knowngood.service.store_queries import count_selected, insert_inspections, select_inspections
 from knowngood.service.store_schema import MIGRATED_CALLER
 from service_testkit import STATION_AUTH, png_bytes, post_image
+from sqlalchemy import create_engine, text
+from sqlalchemy.exc import IntegrityError
 
 RECORD = InspectionRecord(
     id="0" * 32,
@@ -49,32 +52,47 @@ def _rec(i: int, **kw) -> InspectionRecord:
 
 
 @pytest.fixture
-def store(tmp_path):
-    s = SqliteStore(tmp_path / "audit.db")
+def store(store_url):
+    """The same store tests on SQLite and on a real PostgreSQL server (`store_url` in conftest.py)."""
+    s = Store(store_url)
     yield s
     s.close()
 
 
-def test_sqlite_store_implements_the_interface():
+def test_the_store_implements_the_interface():
     members = [n for n in vars(AuditStore) if not n.startswith("_")]
-    assert members and all(callable(getattr(SqliteStore, n, None)) for n in members)
+    assert members and all(callable(getattr(Store, n, None)) for n in members)
 
 
-def test_wal_and_schema_version(store):
-    conn = connect(store.path)
+def test_wal_and_schema_revision(tmp_path):
+    store = SqliteStore(tmp_path / "audit.db")
+    conn = sqlite3.connect(store.path)
     assert conn.execute("PRAGMA journal_mode").fetchone()[0] == "wal"
-    assert conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+    assert (
+        store.revision == store_migrate.head() == conn.execute("SELECT version_num FROM alembic_version").fetchone()[0]
+    )
+    store.close()
 
 
 def test_newer_schema_is_refused(tmp_path):
-    conn = connect(tmp_path / "new.db")
+    conn = sqlite3.connect(tmp_path / "new.db")
     conn.execute(f"PRAGMA user_version={SCHEMA_VERSION + 1}")
     with pytest.raises(RuntimeError, match="newer"):
         create_schema(conn)
 
 
+def test_a_database_from_a_newer_version_is_refused(store_url):
+    Store(store_url).close()
+    engine = create_engine(database_url(store_url))
+    with engine.begin() as conn:
+        conn.execute(text("UPDATE alembic_version SET version_num = '9999'"))
+    engine.dispose()
+    with pytest.raises(RuntimeError, match="newer version"):
+        Store(store_url)
+
+
 def test_a_batch_is_stored_whole_or_not_at_all(store):
-    with pytest.raises(sqlite3.IntegrityError):
+    with pytest.raises(IntegrityError):
         store.add_inspections(records=[_rec(1), _rec(1)])  # duplicate id in the second row
     assert store.count_inspections() == 0
     store.add_inspections(records=[_rec(1), _rec(2)])
@@ -83,22 +101,21 @@ def test_a_batch_is_stored_whole_or_not_at_all(store):
 
 
 def test_verdict_is_constrained(store):
-    with pytest.raises(sqlite3.IntegrityError):
+    with pytest.raises(IntegrityError):
         store.add_inspections(records=[_rec(1, verdict="maybe")])
 
 
-def test_data_functions_take_the_connection(tmp_path):
-    conn = connect(tmp_path / "f.db")
-    create_schema(conn)
-    insert_inspections(conn, records=[_rec(1), _rec(2, verdict="pass"), _rec(3, station="t", part_id="q")])
-    ids = [_rec(i).id for i in range(4)]
-    assert [r.id for r in select_inspections(conn, where=InspectionFilter(verdict="pass"))] == [ids[2]]
-    assert [r.id for r in select_inspections(conn, where=InspectionFilter(since=_rec(2).time))] == [ids[3], ids[2]]
-    assert [r.id for r in select_inspections(conn, where=InspectionFilter(until=_rec(2).time))] == [ids[1]]
-    assert [r.id for r in select_inspections(conn, where=InspectionFilter(station="s"))] == [ids[2], ids[1]]
-    assert [r.id for r in select_inspections(conn, where=InspectionFilter(part_id="q"))] == [ids[3]]
-    assert [r.id for r in select_inspections(conn, limit=1, offset=1)] == [ids[2]]
-    assert count_selected(conn, where=InspectionFilter(station="s", verdict="flag")) == 1
+def test_data_functions_take_the_connection(store):
+    with store.engine.begin() as conn:
+        insert_inspections(conn, records=[_rec(1), _rec(2, verdict="pass"), _rec(3, station="t", part_id="q")])
+        ids = [_rec(i).id for i in range(4)]
+        assert [r.id for r in select_inspections(conn, where=InspectionFilter(verdict="pass"))] == [ids[2]]
+        assert [r.id for r in select_inspections(conn, where=InspectionFilter(since=_rec(2).time))] == [ids[3], ids[2]]
+        assert [r.id for r in select_inspections(conn, where=InspectionFilter(until=_rec(2).time))] == [ids[1]]
+        assert [r.id for r in select_inspections(conn, where=InspectionFilter(station="s"))] == [ids[2], ids[1]]
+        assert [r.id for r in select_inspections(conn, where=InspectionFilter(part_id="q"))] == [ids[3]]
+        assert [r.id for r in select_inspections(conn, limit=1, offset=1)] == [ids[2]]
+        assert count_selected(conn, where=InspectionFilter(station="s", verdict="flag")) == 1
 
 
 def test_reviews_keep_history_and_the_latest_is_the_label(store):
@@ -170,7 +187,7 @@ def test_a_schema_2_store_is_migrated_and_its_row_reviews_become_history(tmp_pat
         )
     store = SqliteStore(path)
     try:
-        assert connect(path).execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
+        assert sqlite3.connect(path).execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
         [moved] = store.reviews(inspection_id="only-on-the-row")  # the row's review is its first history row
         assert (moved.label, moved.operator, moved.time, moved.caller) == ("defective", "Kim", "t3", MIGRATED_CALLER)
         kept = store.reviews(inspection_id="with-history")  # a history already there is not doubled
@@ -183,7 +200,7 @@ def test_a_schema_2_store_is_migrated_and_its_row_reviews_become_history(tmp_pat
         assert store.model_events()[0].revision is None
         store.add_review(inspection_id="only-on-the-row", label="good", operator="Ana", caller="s")
         assert store.get_inspection(inspection_id="only-on-the-row").review_label == "good"
-        columns = {r[1] for r in connect(path).execute("PRAGMA table_info(inspections)")}
+        columns = {r[1] for r in sqlite3.connect(path).execute("PRAGMA table_info(inspections)")}
         assert "model_revision" in columns and not columns & {"review_label", "review_operator", "review_time"}
     finally:
         store.close()
@@ -211,7 +228,7 @@ def test_model_events_and_latest_event(store):
     assert store.latest_event(model_sha256="b" * 64).kind == "swap"
     assert store.latest_event(model_sha256="c" * 64) is None
     assert [e.threshold for e in store.model_events()] == [3.0, 2.5, 2.0]
-    with pytest.raises(sqlite3.IntegrityError):
+    with pytest.raises(IntegrityError):
         store.add_model_event(event=replace(event, kind="guess"))
 
 
@@ -247,8 +264,8 @@ def test_retention_deletes_files_and_keeps_rows(make_client, tiny_good_images, m
     r = client.get(bodies[0]["heatmap_url"], headers=STATION_AUTH)
     assert r.status_code == 404 and "retention" in r.json()["detail"]
     assert client.get(bodies[3]["heatmap_url"], headers=STATION_AUTH).status_code == 200
-    heatmaps = sorted(p.stem for p in (client.app.state.service.settings.data_dir / "heatmaps").iterdir())
-    assert heatmaps == sorted(b["id"] for b in bodies[2:])
+    files = client.app.state.service.files
+    assert [files.get_heatmap(b["id"]) is None for b in bodies] == [True, True, False, False]  # deleted, not hidden
     assert client.app.state.service.store.count_inspections() == 4  # audit rows stay
 
 
@@ -264,3 +281,86 @@ def test_file_names_come_only_from_generated_ids(client):
     for bad in ("../../etc/passwd", "0" * 31 + "/", "A" * 32):
         with pytest.raises(ValueError):
             files.get_heatmap(bad)
+
+
+def test_files_embeddings_and_part_types_are_stored_with_the_row(store):
+    a, b = _rec(1, part_type="bracket"), _rec(2, part_type="casting", verdict="pass")
+    files = [StoredFiles(b"heat-1", b"image-1", b"\x01" * 8), StoredFiles(b"heat-2", None, b"\x02" * 8)]
+    store.add_inspections(records=[a, b], files=files)
+    assert store.file(inspection_id=a.id, kind="heatmap") == b"heat-1"
+    assert store.file(inspection_id=a.id, kind="image") == b"image-1"
+    assert store.file(inspection_id=b.id, kind="image") is None
+    assert store.embeddings(part_type="bracket", model_sha256=a.model_sha256, limit=10) == [b"\x01" * 8]
+    assert store.embeddings(part_type="bracket", model_sha256="c" * 64, limit=10) == []  # another model: none
+    found, total = store.find_inspections(where=InspectionFilter(part_type="casting"), limit=10, offset=0)
+    assert [r.id for r in found] == [b.id] and total == 1
+    store.mark_files_deleted(inspection_ids=[a.id])
+    assert (
+        store.file(inspection_id=a.id, kind="heatmap") is None and store.file(inspection_id=a.id, kind="image") is None
+    )
+    assert store.get_inspection(inspection_id=a.id).files_kept is False
+
+
+def test_a_failed_batch_stores_no_file_either(store):
+    with pytest.raises(IntegrityError):
+        store.add_inspections(records=[_rec(1), _rec(1)], files=[StoredFiles(b"h"), StoredFiles(b"h")])
+    assert store.count_inspections() == 0 and store.file(inspection_id=_rec(1).id, kind="heatmap") is None
+
+
+def test_each_part_type_serves_its_own_model_and_events_say_which(store):
+    event = ModelEvent(time=utc_now(), kind="load", model_id="m", model_sha256="b" * 64, threshold=1.0, caller="c")
+    first = store.add_model_event(event=replace(event, part_type="bracket"), serving=Serving("b" * 64, None, None))
+    second = store.add_model_event(
+        event=replace(event, part_type="casting", model_sha256="c" * 64), serving=Serving("c" * 64, None, None)
+    )
+    third = store.add_model_event(
+        event=replace(event, kind="swap", part_type="bracket", model_sha256="d" * 64),
+        serving=Serving("d" * 64, "b" * 64, None),
+    )
+    assert first < second < third
+    served = {s.part_type: s for s in store.served()}
+    assert (served["bracket"].current_sha256, served["bracket"].previous_sha256) == ("d" * 64, "b" * 64)
+    assert (served["bracket"].event_seq, served["casting"].event_seq) == (third, second)
+    assert [e.part_type for e in store.model_events(part_type="casting")] == ["casting"]
+    assert store.event(seq=third).kind == "swap"
+    assert store.latest_event(model_sha256="b" * 64, part_type="casting") is None
+
+
+def test_bundles_are_kept_in_the_store_with_retention(store):
+    for i, sha in enumerate(("a", "b", "c", "d")):
+        store.put_bundle(sha256=sha * 64, data=bytes([i]) * 10)
+    assert store.get_bundle(sha256="b" * 64) == b"\x01" * 10
+    deleted = store.prune_bundles(keep=1, protect={"a" * 64})
+    assert sorted(deleted) == ["b" * 64, "c" * 64]  # the newest (d) and the protected (a) stay
+    assert store.get_bundle(sha256="a" * 64) is not None and store.get_bundle(sha256="c" * 64) is None
+
+
+def test_two_stores_on_one_database_see_each_others_writes(store_url):
+    one, two = Store(store_url), Store(store_url)  # two instances: each migrates (a no-op the second time)
+    try:
+        one.add_inspections(records=[_rec(1)], files=[StoredFiles(b"h1")])
+        assert two.get_inspection(inspection_id=_rec(1).id) == _rec(1)
+        assert two.add_review(inspection_id=_rec(1).id, label="good", operator="Kim", caller="c").review_count == 1
+        assert [r.operator for r in one.reviews(inspection_id=_rec(1).id)] == ["Kim"]
+        assert two.file(inspection_id=_rec(1).id, kind="heatmap") == b"h1"
+    finally:
+        one.close()
+        two.close()
+
+
+def test_a_schema_3_sqlite_store_is_taken_over_by_the_migrations(tmp_path):
+    path = tmp_path / "v3.db"
+    with sqlite3.connect(path, isolation_level=None) as old:
+        create_schema(old)
+        old.execute(
+            "INSERT INTO serving (id, current_sha256, previous_sha256, startup_sha256) VALUES (1, ?, NULL, ?)",
+            ("b" * 64, "b" * 64),
+        )
+    store = SqliteStore(path)
+    try:
+        [served] = store.served()
+        assert (served.part_type, served.current_sha256, served.startup_sha256) == ("default", "b" * 64, "b" * 64)
+        store.add_inspections(records=[_rec(1)])
+        assert store.get_inspection(inspection_id=_rec(1).id).part_type == "default"
+    finally:
+        store.close()

@@ -1,7 +1,8 @@
 """The operator page in headless Chromium (Debian's, driven by Selenium with an explicit chromedriver, so nothing is
 downloaded) against the real server: sign in, upload, see the original beside the overlay with its colour scale,
 enlarge it, review, watch the queue empty; a failed upload clears the old verdict; the recent list filters and pages
-through the API's own query parameters; the drift state is at the top."""
+through the API's own query parameters; the drift state is at the top. With several part types the operator chooses
+one, and the verdict, the lists, the filter, the model line and the drift banner all say which."""
 
 from __future__ import annotations
 
@@ -16,7 +17,7 @@ import numpy as np
 import pytest
 from knowngood.training.heatmap import MAX_ALPHA, overlay_rgb
 from PIL import Image
-from service_testkit import ADMIN_AUTH, OUTPUT, STATION, STATION_AUTH, png_bytes
+from service_testkit import ADMIN_AUTH, CHANGE, OUTPUT, STATION, STATION_AUTH, png_bytes
 
 CHROMIUM = Path("/usr/bin/chromium")
 CHROMEDRIVER = Path("/usr/bin/chromedriver")
@@ -143,6 +144,9 @@ def test_operator_signs_in_inspects_and_reviews(browser, live_server, tiny_good_
     assert "local codes" in find(By.ID, "caution").text and "quality standards" in find(By.ID, "caution").text
     assert browser.execute_script("return sessionStorage.getItem('knowngood.token')") == STATION
     assert browser.execute_script("return localStorage.length") == 0
+    # one part type: nothing to choose, as before part types existed
+    assert not find(By.ID, "part-type-field").is_displayed() and not find(By.ID, "f-part-type-field").is_displayed()
+    assert find(By.ID, "model-info").text.startswith("model ")
 
     find(By.ID, "file").send_keys(str(image))
     find(By.ID, "part-id").send_keys("P-0001")
@@ -166,6 +170,7 @@ def test_operator_signs_in_inspects_and_reviews(browser, live_server, tiny_good_
     [stored] = httpx.get(live_server.url + "/v1/inspections?limit=5", headers=ADMIN_AUTH).json()["items"]
     model_id, revision = _model_label(stored)
     assert (find(By.ID, "result-model").text, find(By.ID, "result-revision").text) == (model_id, revision)
+    assert find(By.ID, "result-part-type").text == stored["part_type"]
     wait.until(lambda d: f"{model_id} rev {revision}" in find(By.ID, "recent-rows").text)
     assert f"{model_id} rev {revision}" in find(By.ID, "queue-rows").text
     assert "P-0001" in find(By.ID, "queue-rows").text
@@ -247,6 +252,7 @@ def test_a_failed_upload_clears_the_previous_verdict(browser, live_server, tiny_
     assert not find(By.ID, "result").is_displayed()
     for element_id in ("verdict", "score", "threshold", "result-id", "result-model", "result-revision"):
         assert browser.execute_script(f"return document.getElementById('{element_id}').textContent") == ""
+    assert browser.execute_script("return document.getElementById('result-part-type').textContent") == ""
     assert not find(By.ID, "overlay").get_attribute("src") and not find(By.ID, "original").get_attribute("src")
     assert find(By.ID, "part-id").get_attribute("value") == "P-0003"  # kept for a retry with the right file
     _screenshot(browser, tmp_path, "operator_page_failed_upload.png")
@@ -255,19 +261,21 @@ def test_a_failed_upload_clears_the_previous_verdict(browser, live_server, tiny_
     assert [i["part_id"] for i in stored] == ["P-0002"]
 
 
-def _post_batch(url: str, images: list[np.ndarray], *, station: str, prefix: str) -> list[dict]:
+def _post_batch(url: str, images: list[np.ndarray], *, station: str, prefix: str, **form) -> list[dict]:
     files = [("images", (f"{prefix}{i}.png", png_bytes(im), "image/png")) for i, im in enumerate(images)]
-    data = {"station": station, "part_id": [f"{prefix}{i}" for i in range(len(images))]}
+    data = {"station": station, "part_id": [f"{prefix}{i}" for i in range(len(images))], **form}
     r = httpx.post(url + "/v1/inspections/batch", files=files, data=data, headers=STATION_AUTH, timeout=60)
     assert r.status_code == 200, r.text
     return r.json()["items"]
 
 
-def _rows(driver) -> list[list[str]]:
-    """The recent list's cells: time, part, station, verdict, score, model, review."""
-    script = """return [...document.querySelectorAll('#recent-rows tr')]
-        .map(r => [...r.querySelectorAll('td')].map(c => c.textContent))"""
-    return driver.execute_script(script)
+def _rows(driver, table: str = "recent") -> list[dict[str, str]]:
+    """A list's rows, each cell under its column's heading: time, part type, part, station, verdict, score, ..."""
+    script = """const t = document.getElementById(arguments[0] + '-rows').closest('table');
+        const heads = [...t.querySelectorAll('thead th')].map(h => h.textContent);
+        return [...t.querySelectorAll('tbody tr')]
+            .map(r => Object.fromEntries([...r.querySelectorAll('td')].map((c, i) => [heads[i], c.textContent])))"""
+    return driver.execute_script(script, table)
 
 
 def _local_time(driver, iso: str) -> str:
@@ -313,12 +321,12 @@ def test_the_recent_list_filters_and_pages(browser, live_server, tiny_good_image
 
     Select(find(By.ID, "f-size")).select_by_visible_text("10")
     rows = shows("showing 1–10 of 20")
-    assert [r[1] for r in rows] == [f"B-{i}" for i in range(7, -1, -1)] + ["A-11", "A-10"]  # newest first
-    assert all(r[5] == labels[r[1]] for r in rows)  # each verdict with the model revision that made it
+    assert [r["part"] for r in rows] == [f"B-{i}" for i in range(7, -1, -1)] + ["A-11", "A-10"]  # newest first
+    assert all(r["model"] == labels[r["part"]] for r in rows)  # each verdict with the model revision that made it
     assert labels["A-0"] != labels["B-0"]  # the threshold change is a new revision
     find(By.ID, "page-next").click()
     rows = shows("showing 11–20 of 20")
-    assert [r[1] for r in rows] == [f"A-{i}" for i in range(9, -1, -1)]
+    assert [r["part"] for r in rows] == [f"A-{i}" for i in range(9, -1, -1)]
     assert not find(By.ID, "page-next").is_enabled() and find(By.ID, "page-prev").is_enabled()
     _screenshot(browser, tmp_path, "operator_page_page2.png")
     find(By.ID, "page-prev").click()
@@ -327,18 +335,18 @@ def test_the_recent_list_filters_and_pages(browser, live_server, tiny_good_image
 
     apply(**{"f-station": "line-B"})
     rows = shows("showing 1–8 of 8")
-    assert {r[2] for r in rows} == {"line-B"} and len(rows) == 8
+    assert {r["station"] for r in rows} == {"line-B"} and len(rows) == 8
     _screenshot(browser, tmp_path, "operator_page_filtered.png")
     apply(**{"f-verdict": "pass"})
     rows = shows("showing 1–10 of 12")
-    assert {r[3] for r in rows} == {"pass"}
+    assert {r["verdict"] for r in rows} == {"pass"}
     apply(**{"f-part": "A-3"})
-    assert [(r[1], r[2]) for r in shows("showing 1–1 of 1")] == [("A-3", "line-A")]
+    assert [(r["part"], r["station"]) for r in shows("showing 1–1 of 1")] == [("A-3", "line-A")]
     boundary = _local_time(browser, line_b[0]["time"])  # line-A ended more than a second before line-B began
     apply(**{"f-since": boundary})
-    assert {r[2] for r in shows("showing 1–8 of 8")} == {"line-B"}
+    assert {r["station"] for r in shows("showing 1–8 of 8")} == {"line-B"}
     apply(**{"f-until": boundary})
-    assert {r[2] for r in shows("showing 1–10 of 12")} == {"line-A"}
+    assert {r["station"] for r in shows("showing 1–10 of 12")} == {"line-A"}
     apply(**{"f-station": "line-C"})
     shows("showing 0 of 0")
     assert find(By.ID, "recent-empty").is_displayed() and _rows(browser) == []
@@ -347,6 +355,88 @@ def test_the_recent_list_filters_and_pages(browser, live_server, tiny_good_image
     drift = httpx.get(live_server.url + "/v1/drift", headers=STATION_AUTH).json()
     assert drift["images"] >= drift["needed"] and drift["status"] != "not_enough_images", drift
     _drift_badge_shows(browser, drift)
+
+
+def test_the_operator_chooses_among_several_part_types(browser, live_server, second_bundle, tiny_good_images, tmp_path):
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.support.ui import Select, WebDriverWait
+
+    # the server's own bundle serves the part type "default"; a second bundle creates "bracket" beside it
+    url = live_server.url
+    files = {"bundle": ("second.kgm", second_bundle.read_bytes())}
+    r = httpx.put(url + "/v1/part-types/bracket/model", files=files, data=CHANGE, headers=ADMIN_AUTH, timeout=120)
+    assert r.status_code == 200, r.text
+    bracket = r.json()
+    served = httpx.get(url + "/v1/part-types", headers=STATION_AUTH).json()["items"]
+    assert [p["name"] for p in served] == ["bracket", "default"] and served[1]["model"]["id"] != bracket["id"]
+    # threshold 0: the default type's parts are flagged, so the review queue holds them
+    change = {"threshold": 0.0, "operator": "test"}
+    r = httpx.put(url + "/v1/part-types/default/threshold", json=change, headers=ADMIN_AUTH)
+    assert r.status_code == 200, r.text
+    _post_batch(url, tiny_good_images[:2], station="line-A", prefix="D-", part_type="default")
+    image = tmp_path / "bracket.png"
+    image.write_bytes(png_bytes(tiny_good_images[2]))
+
+    wait = WebDriverWait(browser, 20)
+    find = browser.find_element
+    _sign_in(browser, url)
+    find(By.ID, "watch").click()  # no refresh between a filter's reply and the checks
+    choice = Select(find(By.ID, "part-type"))
+    assert find(By.ID, "part-type-field").is_displayed()
+    assert [o.get_attribute("value") for o in choice.options] == ["", "bracket", "default"]
+    # the page picks no part type by itself when there are several: a part inspected as the wrong type is worse
+    # than one not inspected yet
+    assert choice.first_selected_option.get_attribute("value") == ""
+    find(By.ID, "file").send_keys(str(image))
+    find(By.ID, "inspect-btn").click()
+    wait.until(lambda d: "Choose the part type" in find(By.ID, "message").text)
+
+    # the model line follows the choice, from the part type's own route
+    choice.select_by_value("bracket")
+    line = f"part type bracket · model {bracket['id']} rev {bracket['revision']}"
+    wait.until(lambda d: line in find(By.ID, "model-info").text)
+    assert "threshold 2.500" in find(By.ID, "model-info").text
+
+    find(By.ID, "part-id").send_keys("BR-1")
+    find(By.ID, "inspect-btn").click()
+    wait.until(lambda d: find(By.ID, "result-part-type").text == "bracket")
+    assert find(By.ID, "result-model").text == bracket["id"]
+    assert find(By.ID, "result-revision").text == bracket["revision"]
+    # the choice stays for the next part, and says so
+    assert choice.first_selected_option.get_attribute("value") == "bracket"
+    assert find(By.ID, "part-type-kept").is_displayed()
+    [stored] = httpx.get(url + "/v1/inspections?part_id=BR-1", headers=STATION_AUTH).json()["items"]
+    assert stored["part_type"] == "bracket" and stored["model"]["id"] == bracket["id"]
+    # the drift banner is the chosen part type's: its own window, which holds this one image so far
+    r = httpx.get(url + "/v1/part-types/bracket/drift", headers=STATION_AUTH)
+    assert r.status_code == 200, r.text
+    assert r.json()["images"] == 1
+    _drift_badge_shows(browser, r.json())
+    wait.until(lambda d: "part type bracket" in find(By.ID, "drift-text").text)
+    assert "(1 of " in find(By.ID, "drift-text").text
+
+    def shows(info: str, part_type: str):
+        Select(find(By.ID, "f-part-type")).select_by_value(part_type)
+        find(By.ID, "f-apply").click()
+        wait.until(lambda d: find(By.ID, "page-info").text == info)
+        return _rows(browser)
+
+    # the recent list names each row's part type; the filter narrows it to one, through the API's own parameter
+    assert {(r["part"], r["part type"]) for r in shows("showing 1–3 of 3", "")} == {
+        ("BR-1", "bracket"),
+        ("D-0", "default"),
+        ("D-1", "default"),
+    }
+    _screenshot(browser, tmp_path, "operator_page_part_types.png")
+    assert [(r["part"], r["part type"]) for r in shows("showing 1–1 of 1", "bracket")] == [("BR-1", "bracket")]
+    assert {r["part type"] for r in shows("showing 1–2 of 2", "default")} == {"default"}
+    find(By.ID, "f-clear").click()
+    wait.until(lambda d: find(By.ID, "page-info").text == "showing 1–3 of 3")
+    assert find(By.ID, "f-part-type").get_attribute("value") == ""
+    # flagged parts of every type wait in one queue, each with its type
+    queue = {r["part"]: r["part type"] for r in _rows(browser, "queue")}
+    assert {"D-0": "default", "D-1": "default"}.items() <= queue.items()
+    assert queue.get("BR-1", "bracket") == "bracket"
 
 
 def _drift_badge_shows(driver, drift: dict) -> None:

@@ -61,13 +61,21 @@ def test_metrics_in_prometheus_text_format(client, tiny_good_images):
     s = _samples(r.text)
     assert s['knowngood_http_requests_total{method="POST",route="/v1/inspections",status="200"}'] == 3
     assert s['knowngood_http_requests_total{method="POST",route="/v1/inspections",status="422"}'] == 1
-    assert s['knowngood_inspections_total{verdict="pass"}'] + s['knowngood_inspections_total{verdict="flag"}'] == 3
+    pt = 'part_type="default"'  # every model-level series is labelled by part type
+    verdicts = [s.get(f'knowngood_inspections_total{{{pt},verdict="{v}"}}', 0) for v in ("pass", "flag")]
+    assert sum(verdicts) == 3
     model = client.get("/v1/model", headers=STATION_AUTH).json()
-    info = f'knowngood_model_info{{model_id="{model["id"]}",revision="{model["revision"]}",sha256="{model["sha256"]}"}}'
-    assert s[info] == 1
-    assert s["knowngood_threshold"] == 3.0
-    assert s["knowngood_anomaly_score_count"] == 3
-    assert 0 <= s['knowngood_anomaly_score{quantile="0.5"}'] <= s['knowngood_anomaly_score{quantile="0.99"}']
+    labels = f'model_id="{model["id"]}",{pt},revision="{model["revision"]}",sha256="{model["sha256"]}"'
+    assert s[f"knowngood_model_info{{{labels}}}"] == 1
+    assert s[f"knowngood_threshold{{{pt}}}"] == 3.0
+    assert s[f"knowngood_anomaly_score_count{{{pt}}}"] == 3
+    assert (
+        0
+        <= s[f'knowngood_anomaly_score{{{pt},quantile="0.5"}}']
+        <= s[f'knowngood_anomaly_score{{{pt},quantile="0.99"}}']
+    )
+    assert s[f'knowngood_drift_state{{{pt},state="not_enough_images"}}'] == 1
+    assert s[f"knowngood_drift_images{{{pt}}}"] == 3
     route = 'route="/v1/inspections"'
     buckets = [
         v for k, v in s.items() if k.startswith("knowngood_http_request_duration_seconds_bucket{") and route in k
@@ -198,6 +206,14 @@ def test_openapi_is_truthful(client):
         ("post", "/v1/inspections/{inspection_id}/review"),
         ("get", "/v1/inspections/{inspection_id}/reviews"),
         ("get", "/v1/inspections/{inspection_id}/image.png"),
+        ("get", "/v1/inspections/{inspection_id}/original"),
+        ("get", "/v1/part-types"),
+        ("get", "/v1/part-types/{name}/model"),
+        ("put", "/v1/part-types/{name}/model"),
+        ("post", "/v1/part-types/{name}/model/rollback"),
+        ("put", "/v1/part-types/{name}/threshold"),
+        ("get", "/v1/part-types/{name}/events"),
+        ("get", "/v1/part-types/{name}/drift"),
         ("get", "/v1/model"),
         ("get", "/v1/model/events"),
         ("put", "/v1/model"),
@@ -243,14 +259,15 @@ def _gauges(text: str) -> dict[str, dict[tuple, float]]:
 
 def test_drift_state_distance_and_reference_in_metrics(tiny_bundle, tiny_good_images, tmp_path):
     server = start_server(tiny_bundle, tmp_path / "server", extra_env={"KNOWNGOOD_DRIFT_MIN_IMAGES": "4"})
+    pt = ("part_type", "default")  # drift is per part type
     try:
         with httpx.Client(base_url=server.url, headers=STATION_AUTH, timeout=60) as http:
             before = _gauges(http.get("/metrics").text)
             assert before["knowngood_drift_state"] == {
-                (("state", s),): float(s == "not_enough_images") for s in STATES
+                (pt, ("state", s)): float(s == "not_enough_images") for s in STATES
             }  # one gauge per state, 1 for the state now
-            assert before["knowngood_drift_images"] == {(): 0.0}
-            assert "knowngood_drift_distance" not in before  # nothing assessed yet: no made-up number
+            assert before["knowngood_drift_images"] == {(pt,): 0.0}
+            assert not before.get("knowngood_drift_distance")  # nothing assessed yet: no made-up number
             for img in tiny_good_images[:6]:
                 assert http.post("/v1/inspections", files={"image": ("p.png", png_bytes(img))}).status_code == 200
             after = _gauges(http.get("/metrics").text)
@@ -258,11 +275,11 @@ def test_drift_state_distance_and_reference_in_metrics(tiny_bundle, tiny_good_im
     finally:
         server.stop()
     assert drift["status"] in ("ok", "drifting") and drift["distance"] is not None
-    assert after["knowngood_drift_state"] == {(("state", s),): float(s == drift["status"]) for s in STATES}
-    assert after["knowngood_drift_images"] == {(): 6.0}
+    assert after["knowngood_drift_state"] == {(pt, ("state", s)): float(s == drift["status"]) for s in STATES}
+    assert after["knowngood_drift_images"] == {(pt,): 6.0}
     for name in ("distance", "reference_mean", "reference_std", "limit"):
-        assert after[f"knowngood_drift_{name}"][()] == pytest.approx(drift[name], rel=1e-9), name
-    assert after["knowngood_drift_distance"][()] > 0 and after["knowngood_drift_reference_mean"][()] > 0
+        assert after[f"knowngood_drift_{name}"][(pt,)] == pytest.approx(drift[name], rel=1e-9), name
+    assert after["knowngood_drift_distance"][(pt,)] > 0 and after["knowngood_drift_reference_mean"][(pt,)] > 0
 
 
 class _Links(HTMLParser):

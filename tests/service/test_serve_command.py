@@ -11,10 +11,17 @@ from knowngood.training.cli import build_parser
 from service_testkit import free_port
 
 
-def test_serve_is_registered_through_the_entry_point(tiny_bundle):
+def test_serve_is_registered_through_the_entry_point(tiny_bundle, monkeypatch):
     args = build_parser().parse_args(["serve", str(tiny_bundle), "--port", "9123", "--db", "x.db", "--host", "::1"])
     assert args.func is service_cli.serve
-    assert (args.model, args.port, args.db, args.host) == (tiny_bundle, 9123, Path("x.db"), "::1")
+    assert (args.model, args.port, args.db, args.host) == (tiny_bundle, 9123, "x.db", "::1")
+    monkeypatch.setenv("KNOWNGOOD_STATION_TOKENS", "station-token-0001")
+    settings = service_cli._settings(args)
+    assert (settings.db, settings.database_url, settings.store_url()) == (Path("x.db"), None, "x.db")
+    url = "postgresql://inspect@db.example/quality"  # a URL goes to database_url; the part type has a default
+    args = build_parser().parse_args(["serve", "--db", url, "--part-type", "bracket-A"])
+    settings = service_cli._settings(args)
+    assert (settings.model_path, settings.database_url, settings.part_type) == (None, url, "bracket-A")
 
 
 def test_missing_model_is_exit_2(capsys, monkeypatch):

@@ -23,10 +23,27 @@ def test_environment_with_prefix(monkeypatch, tmp_path, tiny_bundle):
     monkeypatch.setenv("KNOWNGOOD_KEEP_IMAGES", "true")
     s = Settings()
     assert s.station_tokens == [GOOD, "station-token-0002"] and s.admin_tokens == ["admin-token-000001"]
-    assert s.model_path == tiny_bundle and s.max_batch == 4 and s.keep_images is True
+    assert s.model_path == tiny_bundle and s.max_batch == 4 and s.keep_images == "all"  # true: the 0.1 meaning
     assert s.torch_threads == 2 and s.onnx is True  # defaults
     roles = {t: c.role for t, c in s.tokens().items()}
     assert roles == {GOOD: "station", "station-token-0002": "station", "admin-token-000001": "admin"}
+
+
+@pytest.mark.parametrize(
+    "value, kept", [("true", "all"), ("false", "none"), ("flagged", "flagged"), ("all", "all"), ("none", "none")]
+)
+def test_keep_images_takes_the_policy_or_the_old_true_false(monkeypatch, value, kept):
+    monkeypatch.setenv("KNOWNGOOD_KEEP_IMAGES", value)
+    assert Settings(station_tokens=[GOOD]).keep_images == kept
+    assert Settings(station_tokens=[GOOD]).keep_passed_share == 0.0
+
+
+def test_default_keeps_flagged_images_and_a_bad_part_type_is_refused():
+    assert Settings(station_tokens=[GOOD]).keep_images == "flagged"
+    with pytest.raises(ValidationError, match="part_type"):
+        Settings(station_tokens=[GOOD], part_type="../etc")
+    with pytest.raises(ValidationError, match="keep_passed_share"):
+        Settings(station_tokens=[GOOD], keep_passed_share=1.5)
 
 
 def test_tokens_file(tmp_path):
