@@ -42,7 +42,7 @@ def register(subparsers) -> None:
         "instances share",
     )
     p.add_argument(
-        "--data-dir", type=Path, default=None, help="what versions before 0.2 kept in a folder (knowngood-data)"
+        "--data-dir", type=Path, default=None, help="what earlier versions kept in a folder (knowngood-data)"
     )
     p.set_defaults(func=serve)
 

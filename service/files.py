@@ -1,5 +1,5 @@
 """Heatmaps, kept images and bundles. They live in the audit store (`store.py`: every instance reads what any
-wrote); this module packs a heatmap record into bytes and back, and still reads what versions before 0.2 kept in
+wrote); this module packs a heatmap record into bytes and back, and still reads what earlier versions kept in
 the data folder (heatmaps/<id>.npz, images/<id>.img, models/<sha256>.kgm), so an upgrade loses no picture.
 
 The heatmap record holds the map at the model's working resolution (float16) and the model's view of the image

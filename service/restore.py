@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import logging
+import threading
 from collections import OrderedDict
 from dataclasses import dataclass
 from pathlib import Path
@@ -37,21 +38,24 @@ class Models:
     def __init__(self, files: FileStore, settings: Settings, *, size: int = 8):
         self.files, self.settings, self.size = files, settings, size
         self._ready: OrderedDict[str, LoadedModel] = OrderedDict()
+        self._lock = threading.Lock()  # the follower thread and request threads share the cache
 
     def add(self, loaded: LoadedModel) -> LoadedModel:
-        self._ready[loaded.detector.sha256] = loaded
-        self._ready.move_to_end(loaded.detector.sha256)
-        while len(self._ready) > self.size:
-            self._ready.popitem(last=False)
+        with self._lock:
+            self._ready[loaded.detector.sha256] = loaded
+            self._ready.move_to_end(loaded.detector.sha256)
+            while len(self._ready) > self.size:
+                self._ready.popitem(last=False)
         return loaded
 
     def load(self, sha: str | None, source: str) -> LoadedModel | None:
         """The bundle with this sha256 as the store keeps it, readied; None if it is not kept or no longer valid."""
         if sha is None:
             return None
-        if sha in self._ready:
-            self._ready.move_to_end(sha)
-            return self._ready[sha]
+        with self._lock:
+            if sha in self._ready:
+                self._ready.move_to_end(sha)
+                return self._ready[sha]
         data = self.files.get_bundle(sha)
         if data is None:
             return None

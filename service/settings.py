@@ -42,7 +42,7 @@ class Settings(BaseSettings):
     part_type: str = Field(DEFAULT_PART_TYPE, pattern=PART_TYPE)  # the part type the command-line bundle serves
     db: Path = Path("knowngood.db")  # SQLite audit store (WAL), unless database_url is set
     database_url: str | None = None  # postgresql://user@host/db (shared by instances) or an SQLite path
-    data_dir: Path = Path("knowngood-data")  # read only for what versions before 0.2 kept there (heatmaps, bundles)
+    data_dir: Path = Path("knowngood-data")  # read only: what earlier versions kept there
     sync_seconds: float = Field(2.0, gt=0, le=60)  # how often an instance follows the models others changed
     host: str = "127.0.0.1"
     port: int = Field(8000, ge=1, le=65535)
@@ -71,7 +71,7 @@ class Settings(BaseSettings):
     @field_validator("keep_images", mode="before")
     @classmethod
     def _keep_images(cls, value):
-        """true / false (the setting before 0.2) mean all / none."""
+        """true / false (the earlier setting) mean all / none."""
         if isinstance(value, bool):
             return "all" if value else "none"
         if isinstance(value, str) and value.strip().lower() in ("true", "false", "1", "0", "yes", "no"):

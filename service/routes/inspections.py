@@ -81,7 +81,7 @@ def _after(state: ServiceState, background: BackgroundTasks, count: int) -> None
 @router.post(
     "",
     response_model=InspectionCreated,
-    responses=problems.responses(400, 401, 413, 422, 503),
+    responses=problems.responses(400, 401, 404, 409, 413, 422, 503),
     dependencies=[_once("image", "part_id", "station", "part_type")],
 )
 def create_inspection(
@@ -105,7 +105,7 @@ def create_inspection(
 @router.post(
     "/batch",
     response_model=BatchCreated,
-    responses=problems.responses(400, 401, 413, 422, 503),
+    responses=problems.responses(400, 401, 404, 409, 413, 422, 503),
     dependencies=[_once("station", "part_type")],
 )
 def create_batch(

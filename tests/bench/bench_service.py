@@ -70,7 +70,9 @@ def _images(n: int, size: int, channels: int, seed: int = 0) -> list[bytes]:
     return out
 
 
-def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Popen, str, float]:
+def _start(
+    bundle_path: Path, folder: Path, threads: int, *, db: str | None = None, env_extra: dict | None = None
+) -> tuple[subprocess.Popen, str, float]:
     port = _free_port()
     cmd = [
         sys.executable,
@@ -81,7 +83,7 @@ def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Po
         "--port",
         str(port),
         "--db",
-        str(folder / "audit.db"),
+        db or str(folder / "audit.db"),
         "--data-dir",
         str(folder / "data"),
     ]
@@ -91,6 +93,7 @@ def _start(bundle_path: Path, folder: Path, threads: int) -> tuple[subprocess.Po
         "KNOWNGOOD_ADMIN_TOKENS": ADMIN,
         "KNOWNGOOD_TORCH_THREADS": str(threads),
         "KNOWNGOOD_LOG_LEVEL": "warning",
+        **(env_extra or {}),
     }
     log = open(folder / "server.log", "wb")
     start = time.perf_counter()

@@ -23,7 +23,7 @@ def test_environment_with_prefix(monkeypatch, tmp_path, tiny_bundle):
     monkeypatch.setenv("KNOWNGOOD_KEEP_IMAGES", "true")
     s = Settings()
     assert s.station_tokens == [GOOD, "station-token-0002"] and s.admin_tokens == ["admin-token-000001"]
-    assert s.model_path == tiny_bundle and s.max_batch == 4 and s.keep_images == "all"  # true: the 0.1 meaning
+    assert s.model_path == tiny_bundle and s.max_batch == 4 and s.keep_images == "all"  # true: the earlier meaning
     assert s.torch_threads == 2 and s.onnx is True  # defaults
     roles = {t: c.role for t, c in s.tokens().items()}
     assert roles == {GOOD: "station", "station-token-0002": "station", "admin-token-000001": "admin"}
