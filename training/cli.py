@@ -1,4 +1,4 @@
-"""The `knowngood` command: train, tune, inspect, demo (and `serve`, registered by the service package).
+"""The `knowngood` command: train, tune, inspect, demo, export-reviews (and `serve`, registered by the service package).
 
 Exit codes: 0 done; 1 flagged parts found (inspect --fail-on-flag only); 2 bad usage or bad input.
 """
@@ -13,6 +13,7 @@ from pathlib import Path
 
 from knowngood.training.config import ModelConfig
 from knowngood.training.errors import KnowngoodError
+from knowngood.training.export_reviews import register as _add_export_reviews
 
 
 def _add_train(sub) -> None:
@@ -24,18 +25,29 @@ def _add_train(sub) -> None:
     p.add_argument(
         "--size",
         type=int,
-        default=ModelConfig.size,
+        default=None,
         metavar="PX",
-        help="working resolution: the long side in px, a multiple of 16 up to 1024 (default 128); the short side "
-        "follows the images' aspect ratio",
+        help=f"working resolution: the long side in px, a multiple of 16 up to 1024 (default {ModelConfig.size}; "
+        "with --from, the bundle's); the short side follows the images' aspect ratio",
     )
     p.add_argument(
         "--tile",
         type=int,
-        default=0,
+        default=None,
         metavar="PX",
         help="inspect large images in tiles of PX native px (resized to --size), at the camera's own scale, "
-        "instead of shrinking the whole image; the heatmap is stitched back at full resolution",
+        "instead of shrinking the whole image; the heatmap is stitched back at full resolution (with --from, "
+        "the bundle's)",
+    )
+    p.add_argument(
+        "--from",
+        dest="start",
+        type=Path,
+        default=None,
+        metavar="MODEL",
+        help="continue from this bundle's trained networks on the new images (e.g. confirmed reviews) instead of "
+        "a fresh start; its settings are kept (a different --size or --tile is refused), and everything fitted "
+        "to data (standardisation, terms, threshold) is fitted afresh",
     )
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--recipe", choices=("joint", "two_stage"), default="joint")
@@ -64,6 +76,14 @@ def _add_tune(sub) -> None:
     target.add_argument("--target-false-reject", type=float, default=None, metavar="A")
     target.add_argument("--target-catch", type=float, default=None, metavar="C")
     p.add_argument("--report", type=Path, default=None, metavar="DIR")
+    p.add_argument(
+        "--compare",
+        type=Path,
+        default=None,
+        metavar="OLD_MODEL",
+        help="also score the holdout with OLD_MODEL (e.g. the model in service before a retraining) and show the "
+        "two side by side: AUROCs, the rates at each model's own threshold, one ROC plot with both curves",
+    )
     out = p.add_mutually_exclusive_group()
     out.add_argument("-o", "--output", type=Path, default=None, metavar="OUT", help="write the tuned bundle here")
     out.add_argument("--in-place", action="store_true", help="rewrite MODEL with the tuned threshold")
@@ -107,7 +127,7 @@ def _add_demo(sub) -> None:
 def build_parser() -> argparse.ArgumentParser:
     parser = argparse.ArgumentParser(prog="knowngood", description="Visual inspection from known-good images.")
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for add in (_add_train, _add_tune, _add_inspect, _add_demo):
+    for add in (_add_train, _add_tune, _add_inspect, _add_demo, _add_export_reviews):
         add(sub)
     for ep in entry_points(group="knowngood.commands"):
         try:

@@ -14,10 +14,11 @@ import numpy as np
 from knowngood.training import bundle, runtime
 from knowngood.training.config import ModelConfig, TrainConfig
 from knowngood.training.data import fingerprint, list_images, load_folder, min_side_for, read_image, skip_reason
-from knowngood.training.errors import BadConfig, BadDataset, BadImage
+from knowngood.training.detector import Detector
+from knowngood.training.errors import BadBundle, BadConfig, BadDataset, BadImage
 from knowngood.training.heatmap import heatmap_png_bytes
 from knowngood.training.selection import term_summary
-from knowngood.training.train import scale_note, train_bundle
+from knowngood.training.train import continued_config, scale_note, train_bundle
 from knowngood.training.tuning import threshold_for_catch, threshold_for_false_reject
 
 
@@ -47,11 +48,17 @@ def train(args) -> int:
     _positive("--minutes", args.minutes)
     _positive("--steps", args.steps)
     _writable_output(args.output)
-    good = load_folder(args.good_dir, skip_bad=args.skip_bad, min_side=min_side_for(args.size))
+    start = _load_named("--from", args.start)
+    if start is not None:  # the bundle's settings, which its weights fit, colour mode included
+        model = continued_config(start, size=args.size, tile=args.tile, name=str(args.start))
+    else:
+        model = ModelConfig(size=ModelConfig.size if args.size is None else args.size, tile=args.tile or 0)
+    good = load_folder(args.good_dir, skip_bad=args.skip_bad, min_side=min_side_for(max(model.shape)))
     _report_skipped(good.skipped)
     steps = args.steps if args.steps is not None else 10**9
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
-    model = ModelConfig(size=args.size, tile=args.tile, channels=good.channels)
+    if start is None:
+        model = dataclasses.replace(model, channels=good.channels)
     note = scale_note(good.images, model)
     if note:
         print(f"knowngood: note: {note}", file=sys.stderr)
@@ -67,7 +74,16 @@ def train(args) -> int:
         recipe=args.recipe,
         target_false_reject=args.target_false_reject,
     )
-    det = train_bundle(good, args.output, model=model, train=tcfg, progress=not args.quiet, resume=not args.fresh)
+    det = train_bundle(
+        good,
+        args.output,
+        model=model,
+        train=tcfg,
+        progress=not args.quiet,
+        resume=not args.fresh,
+        start=start,
+        start_path=args.start,
+    )
     t = det.manifest["training"]
     print(
         f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
@@ -78,7 +94,20 @@ def train(args) -> int:
     choice = det.manifest["score"].get("choice", {})
     if "chosen" in choice:
         print(f"chose {term_summary(choice)}")
+    if start is not None:
+        print(f"continued from {args.start} (model {start.model_id}, sha256 {start.sha256})")
     return 0
+
+
+def _load_named(option: str, path: Path | None) -> Detector | None:
+    """The Detector of the bundle an option names (None without one); an unreadable bundle is refused, naming
+    the option."""
+    if path is None:
+        return None
+    try:
+        return bundle.load(path)[0]
+    except BadBundle as exc:
+        raise BadBundle(f"{option} {exc}") from None
 
 
 def _report_skipped(skipped: list[tuple[Path, str]]) -> None:
@@ -106,6 +135,7 @@ def tune(args) -> int:
         report=args.report,
         output=output,
         skip_bad=args.skip_bad,
+        compare=args.compare,
     )
     for warning in summary["warnings"]:
         print(f"knowngood: warning: {warning}", file=sys.stderr)
@@ -119,6 +149,7 @@ def tune(args) -> int:
 def tune_text(summary: dict) -> str:
     """The few lines a person reads after `tune`: the threshold and its target, the rates it achieves with their
     intervals, the AUROCs, and where the bundle and the report are."""
+    from knowngood.training.comparison import compare_text
     from knowngood.training.report import mask_coverage, rate_text
 
     th = summary["threshold"]
@@ -133,12 +164,14 @@ def tune_text(summary: dict) -> str:
             f"; pixel AUROC {_num(summary['pixel_auroc'])}, PRO {_num(summary['pro'])} ({mask_coverage(summary)})"
         )
     report = f"report {summary['report']}" if "report" in summary else "no report (--report DIR writes one)"
+    versus = compare_text(summary["compare"]) if "compare" in summary else []
     return "\n".join(
         [
             f"threshold {th['value']:.4g} for {goal}: a part is flagged when its score is above it",
             f"  false-reject rate  {rate_text(summary['false_reject'])}",
             f"  catch rate         {rate_text(summary['catch'])}",
             f"  {quality}",
+            *versus,
             f"wrote {summary['bundle']} (model {summary['model_id']}, revision {summary['revision']}); {report}",
         ]
     )
@@ -159,14 +192,18 @@ def tune_model(
     target_false_reject: float | None = None,
     report: Path | None = None,
     skip_bad: bool = False,
+    compare: Path | None = None,
 ) -> dict:
     """Scores the labelled holdout, sets the threshold (default: 1 % false-reject), saves the tuned bundle to
     `output` (which may be `model` itself), writes the report; returns the summary (`report.metrics_summary` plus
-    where things went and the tuned bundle's identity)."""
+    where things went and the tuned bundle's identity). With `compare` (an older bundle), the holdout is scored
+    with it too and `summary["compare"]` holds both models side by side, each at its own threshold."""
+    from knowngood.training.comparison import compare_models
     from knowngood.training.holdout import load_holdout  # matplotlib comes with the report: keep `inspect` light
     from knowngood.training.report import metrics_summary, write_report
 
     det, frechet = bundle.load(model)
+    old = _load_named("--compare", compare)  # before any work or writing
     holdout = load_holdout(det, good, defective, masks, skip_bad=skip_bad)
     _report_skipped(holdout.skipped)
     good_s, bad_s = holdout.scores[holdout.labels == 0], holdout.scores[holdout.labels == 1]
@@ -184,6 +221,9 @@ def tune_model(
     tuned, _ = bundle.load(output)  # what was written: its sha256, model id and revision
     summary = metrics_summary(holdout, choice)
     summary.update(model_id=tuned.model_id, revision=tuned.revision, sha256=tuned.sha256)
+    versus = None if old is None else compare_models(holdout, summary, tuned, output, old, compare)
+    if versus is not None:
+        summary["compare"] = versus.to_dict()
     if report is not None:
         page = write_report(
             report,
@@ -191,6 +231,7 @@ def tune_model(
             choice,
             title=f"knowngood report: {Path(model).name}",
             model_info=_model_info(tuned, output),
+            comparison=versus,
         )
         summary["report"] = str(page)
     summary["bundle"] = str(output)
@@ -220,6 +261,9 @@ def _model_info(det, out: Path) -> dict:
     }
     if holdout.get("masks"):
         info["Holdout masks"] = holdout["masks"]
+    start = training.get("continued_from")
+    if start:
+        info["Continued from"] = f"{start['bundle']} (model {start['model_id']}, sha256 {start['sha256']})"
     choice = m.get("score", {}).get("choice", {})
     info["Terms"] = term_summary(choice) if "chosen" in choice else choice.get("method", "not recorded")
     if det.cfg.tile:

@@ -45,12 +45,21 @@ def _critic(net: FeatureCritic, a: torch.Tensor) -> torch.Tensor:
 
 
 def fit_feature_critic(
-    phi: torch.Tensor, *, steps: int = 1000, batch: int = 512, seed: int = 0, lr: float = 2e-4
+    phi: torch.Tensor,
+    *,
+    steps: int = 1000,
+    batch: int = 512,
+    seed: int = 0,
+    lr: float = 2e-4,
+    init: dict[str, torch.Tensor] | None = None,
 ) -> FeatureCritic:
-    """Trains a FeatureCritic on known-good pretrained features phi (N, F, h, w); returns it in eval mode."""
+    """Trains a FeatureCritic on known-good pretrained features phi (N, F, h, w), from the weights `init` when
+    given (`train --from`) instead of a fresh init; returns it in eval mode."""
     gen = torch.Generator().manual_seed(seed)
     torch.manual_seed(seed)
     net = FeatureCritic(phi.shape[1])
+    if init is not None:
+        net.load_state_dict(init)
     patches = local_average(phi).permute(0, 2, 3, 1).reshape(-1, phi.shape[1])  # (N h w, F)
     opt = torch.optim.Adam(
         [{"params": net.adaptor.parameters(), "lr": lr / 2}, {"params": net.critic.parameters(), "lr": lr}]

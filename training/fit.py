@@ -52,13 +52,23 @@ def izi_f_loss(critic: Critic, x: torch.Tensor, recon: torch.Tensor, kappa: floa
 
 class Fitter:
     def __init__(
-        self, train_x: torch.Tensor, val_x: torch.Tensor, mcfg: ModelConfig, tcfg: TrainConfig, device: str = "cpu"
+        self,
+        train_x: torch.Tensor,
+        val_x: torch.Tensor,
+        mcfg: ModelConfig,
+        tcfg: TrainConfig,
+        device: str = "cpu",
+        init: dict[str, dict] | None = None,
     ):
         torch.manual_seed(tcfg.seed)
         self.train_x, self.val_x, self.mcfg, self.tcfg = train_x, val_x, mcfg, tcfg
         self.device = torch.device(device)
         self.gen = torch.Generator().manual_seed(tcfg.seed)  # on the CPU: the same draws on any device
-        self.E, self.G, self.D = (net.to(self.device) for net in build(mcfg))
+        nets = build(mcfg)  # built (and the seed's draws taken) either way: a continued run stays deterministic
+        if init is not None:
+            for key, net in zip(("E", "G", "D"), nets):
+                net.load_state_dict(init[key])
+        self.E, self.G, self.D = (net.to(self.device) for net in nets)
         opt = dict(lr=tcfg.lr, betas=tcfg.betas)
         self.opt_d = torch.optim.Adam(self.D.parameters(), **opt)
         self.opt_ge = torch.optim.Adam([*self.E.parameters(), *self.G.parameters()], **opt)
@@ -166,15 +176,20 @@ def fit(
     checkpoint: Path | None = None,
     progress: bool = True,
     device: str | None = None,
+    init: dict[str, dict] | None = None,
 ) -> FitResult:
     """Trains on train_x (N, C, S, S); val_x are held-out known-good images. Stops after `tcfg.steps` steps, or
     at `tcfg.minutes` if that comes first (then the work, and so the bundle, depends on the machine's speed).
-    The returned nets are on the CPU in eval mode."""
+    `init`: state dicts {"E", "G", "D"} the nets start from instead of a fresh init (`train --from`); the nets
+    as they start are then a candidate too, so a continued run never ends with a worse held-out reconstruction
+    than it started with. The returned nets are on the CPU in eval mode."""
     if tcfg.threads:
         torch.set_num_threads(tcfg.threads)
-    fitter = Fitter(train_x, val_x, mcfg, tcfg, device=device or default_device())
+    fitter = Fitter(train_x, val_x, mcfg, tcfg, device=device or default_device(), init=init)
     if checkpoint is not None and checkpoint.exists():
         load_checkpoint(fitter, checkpoint)
+    if init is not None and fitter.step == 0:
+        fitter.remember(fitter.evaluate())  # its own fixed z: the training draws stay as in a fresh run
     budget = tcfg.minutes * 60 if tcfg.minutes else None
     bar = progress_bar(fitter.step / tcfg.steps, enabled=progress)
     start = time.monotonic()

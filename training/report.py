@@ -11,6 +11,7 @@ import datetime as dt
 import html
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import matplotlib
 import numpy as np
@@ -23,6 +24,9 @@ from knowngood.training import __version__  # noqa: E402
 from knowngood.training.heatmap import overlay_png  # noqa: E402
 from knowngood.training.metrics import average_precision, image_auroc, pixel_auroc, pro_score  # noqa: E402
 from knowngood.training.tuning import Rate, ThresholdChoice, per_class_catch  # noqa: E402
+
+if TYPE_CHECKING:  # comparison builds on this module; the report only calls its section
+    from knowngood.training.comparison import Comparison
 
 PRO_MAX_FPR = 0.3
 GALLERY_SIZE = 8
@@ -330,11 +334,18 @@ def _warnings_html(m: dict, skipped: list) -> str:
 
 
 def write_report(
-    out_dir: Path, holdout: HoldoutResult, choice: ThresholdChoice, *, title: str, model_info: dict
+    out_dir: Path,
+    holdout: HoldoutResult,
+    choice: ThresholdChoice,
+    *,
+    title: str,
+    model_info: dict,
+    comparison: Comparison | None = None,
 ) -> Path:
     """Writes out_dir/index.html with its PNG plots and gallery beside it; returns the page's path. Scores:
     higher = less like known-good; flagged when score > choice.value. `model_info`: rows of the Model table
-    (label: value), e.g. model id, revision, bundle sha256, the training and holdout folders."""
+    (label: value), e.g. model id, revision, bundle sha256, the training and holdout folders. `comparison`
+    (`tune --compare`): a section after the summary with both models side by side and their ROC curves."""
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     m = metrics_summary(holdout, choice)
@@ -360,6 +371,7 @@ def write_report(
         "<h2>Summary</h2>",
         _headline(m),
         f"<p>{_e(choice.note)}</p>" if choice.note else "",
+        comparison.section(out) if comparison is not None else "",
         "<h2>Confusion matrix</h2>",
         _confusion_table(m, cells),
         "<h2>Catch rate per defect class</h2>",

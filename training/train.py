@@ -9,10 +9,10 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training import bundle
-from knowngood.training.config import ModelConfig, TrainConfig, to_dict
+from knowngood.training.config import TERM_FIELDS, ModelConfig, TrainConfig, to_dict
 from knowngood.training.data import ImageSet, to_model_input, working_shape
 from knowngood.training.detector import Detector, pad_to, tile_boxes
-from knowngood.training.errors import BadDataset
+from knowngood.training.errors import BadConfig, BadDataset
 from knowngood.training.feature_critic import fit_feature_critic
 from knowngood.training.fit import fit, split_indices
 from knowngood.training.frechet import gaussian_stats
@@ -36,27 +36,42 @@ SCORE_DEFINITION = (
 
 
 def train_bundle(
-    good: ImageSet, out: Path, *, model: ModelConfig, train: TrainConfig, progress: bool = True, resume: bool = True
+    good: ImageSet,
+    out: Path,
+    *,
+    model: ModelConfig,
+    train: TrainConfig,
+    progress: bool = True,
+    resume: bool = True,
+    start: Detector | None = None,
+    start_path: Path | None = None,
 ) -> Detector:
     """Trains on `good`, keeps `train.holdout_share` of it out for standardisation, the choice of terms and the
     conformal threshold, and writes the bundle to `out`. A checkpoint beside `out` lets an interrupted run resume.
 
     `model.size` is the working long side (the short side follows the images' aspect ratio); with `model.tile`
-    the networks see tiles of that many native pixels, so a large image keeps the camera's own scale."""
+    the networks see tiles of that many native pixels, so a large image keeps the camera's own scale.
+
+    `start` (loaded from `start_path`; `train --from`): a bundle whose trained nets (generator, encoder, critic,
+    feature critic) this run continues from instead of a fresh init; `model` is then `continued_config(start)`.
+    Everything fitted to data (memory, statistics, standardisation, the choice of terms, the threshold, the
+    Fréchet reference, fingerprints) is fitted afresh on `good`; the manifest records the bundle continued from."""
     if len(good.images) < MIN_IMAGES:
         raise BadDataset(f"need at least {MIN_IMAGES} known-good images to train, got {len(good.images)}")
     perceptual = load_pretrained() if model.pretrained else None  # before the fit: fail fast without it
-    model = _with_working_shape(model, good.images)
+    model = _with_working_shape(model, good.images) if start is None else _same_shape(model, good.images)
     fit_idx, std_idx, cal_idx = split_indices(len(good.images), train.holdout_share, train.seed)
     sets = {
         name: _inputs(good.images, idx, model, train.seed)
         for name, idx in (("fit", fit_idx), ("std", std_idx), ("cal", cal_idx))
     }
     hold = torch.cat([sets["std"], sets["cal"]])
-    ckpt = Path(str(out) + ".ckpt")
+    # a continued run's checkpoint names its start: a fresh run's checkpoint beside `out` must not resume it
+    ckpt = Path(str(out) + ".ckpt" if start is None else f"{out}.from-{start.model_id}.ckpt")
     if not resume and ckpt.exists():
         ckpt.unlink()
-    result = fit(sets["fit"], hold, model, train, checkpoint=ckpt, progress=progress)
+    gan_init, critic_init = _start_weights(start)
+    result = fit(sets["fit"], hold, model, train, checkpoint=ckpt, progress=progress, init=gan_init)
     nets = (result.encoder, result.generator, result.critic)
     feature_critic = None
     phi = None  # pretrained features of the fit split: computed once, for the feature critic and the choice
@@ -65,7 +80,7 @@ def train_bundle(
     if model.adversarial > 0:
         if progress:
             print("training the feature-space critic ...", flush=True)
-        feature_critic = fit_feature_critic(phi, steps=train.critic_feature_steps, seed=train.seed)
+        feature_critic = fit_feature_critic(phi, steps=train.critic_feature_steps, seed=train.seed, init=critic_init)
     choice = None
     if train.choose_terms:
         if progress:
@@ -100,6 +115,9 @@ def train_bundle(
     mu, sigma = gaussian_stats(train_feats)
     counts = (len(fit_idx), len(std_idx), len(cal_idx))
     det.manifest = _manifest(good, model, train, result, threshold, counts, choice)
+    det.manifest["training"]["continued_from"] = (
+        None if start is None else {"bundle": str(start_path), "model_id": start.model_id, "sha256": start.sha256}
+    )
     held = [good.images[i] for i in np.r_[std_idx, cal_idx]]
     frechet = {"train_mu": mu, "train_sigma": sigma, "holdout_features": det.embed_images(held)}
     bundle.save(det, frechet, out)
@@ -141,6 +159,48 @@ def scale_note(images: list, model: ModelConfig) -> str | None:
         f"a defect under about {SMALLEST_SEEN_PX * ratio:.0f} px in the image may be missed; --size "
         f"{min(1024, 2 * model.size)} or more, or --tile {model.size} (tiles at the camera's own scale), sees it"
     )
+
+
+def continued_config(start: Detector, *, size: int | None, tile: int | None, name: str) -> ModelConfig:
+    """The model settings of a run continuing from the bundle `start` (`train --from`, file `name`): the bundle's
+    preprocessing and network settings, which its weights fit, with the terms' weights and the residual shift back
+    at their defaults, to be chosen again on the new images. A --size or --tile other than the bundle's is refused."""
+    side, own_tile = max(start.cfg.shape), start.cfg.tile
+    if size is not None and size != side:
+        raise BadConfig(
+            f"--size {size} conflicts with --from {name}, which works at {side} px: a continued model keeps its "
+            "bundle's settings (leave out --size, or train afresh without --from)"
+        )
+    if tile is not None and tile != own_tile:
+        has = f"tiles of {own_tile} px" if own_tile else "whole images (no tiles)"
+        raise BadConfig(
+            f"--tile {tile} conflicts with --from {name}, which inspects {has}: a continued model keeps its "
+            "bundle's settings (leave out --tile, or train afresh without --from)"
+        )
+    defaults = {field: getattr(ModelConfig, field) for field in (*TERM_FIELDS, "residual_shift")}
+    return dataclasses.replace(start.cfg, **defaults)
+
+
+def _start_weights(start: Detector | None) -> tuple[dict | None, dict | None]:
+    """The state dicts a continued run starts from: {"E", "G", "D"} for `fit`, and the feature critic's (None
+    when the bundle has none: its choice of terms left the adversarial term out)."""
+    if start is None:
+        return None, None
+    g = start.graph
+    gan = {key: net.state_dict() for key, net in (("E", g.encoder), ("G", g.generator), ("D", g.critic))}
+    critic = getattr(g, "feature_critic", None)
+    return gan, None if critic is None else critic.state_dict()
+
+
+def _same_shape(model: ModelConfig, images: list) -> ModelConfig:
+    """A continued model keeps its working shape; new images of another aspect ratio would need another one."""
+    if not model.tile and working_shape(images, max(model.shape)) != model.shape:
+        h, w = working_shape(images, max(model.shape))
+        raise BadDataset(
+            f"the images' aspect ratio gives a working shape of {h} x {w} px, but the model continued from works "
+            f"at {model.shape[0]} x {model.shape[1]} px: train afresh without --from"
+        )
+    return model
 
 
 def _with_working_shape(model: ModelConfig, images: list) -> ModelConfig:

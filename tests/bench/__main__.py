@@ -1,9 +1,10 @@
-"""`python -m tests.bench --out bench_out/bench.json [--quick] [--only NAME ...] [--minutes M]`
+"""`python -m tests.bench --out bench_out/bench.json [--quick] [--only NAME ...] [--minutes M] [--drift-only]`
 
 Sections of the JSON: datasets, quality (per dataset: knowngood and the peers), ablation (per dataset: the same
 trained nets with other terms, and on the tiled dataset knowngood at 128 px), best_peers, speed (a trained
 bundle; 128 and 256 px, batch 1 and 32, eager and ONNX Runtime; tiled inspection in s per megapixel), memory,
-service, machine, settings. Training time per dataset: `train_seconds` in each knowngood row. The JSON is
+service, drift (false alarms and detection delay of the drift monitor per demo part kind; `drift.py`; alone with
+`--drift-only`), machine, settings. Training time per dataset: `train_seconds` in each knowngood row. The JSON is
 rewritten after every dataset, so a long run that is stopped still leaves what it measured.
 """
 
@@ -21,7 +22,7 @@ from pathlib import Path
 import torch
 from knowngood.training import bundle
 
-from tests.bench import datasets, memory, quality, speed
+from tests.bench import datasets, drift, memory, quality, speed
 
 QUICK_DATASETS = ("elpv-mono", "demo-bracket")
 
@@ -52,10 +53,21 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         "--skip",
         action="append",
         default=[],
-        choices=("speed", "memory", "service"),
+        choices=("speed", "memory", "service", "drift"),
         help="leave a section out (repeatable)",
     )
+    p.add_argument(
+        "--drift-only",
+        action="store_true",
+        help="only the drift section (the demo sets among --only, else bracket and weave), on models it trains",
+    )
+    p.add_argument(
+        "--drift-steps", type=int, default=200, help="training steps of a drift model the quality section did not train"
+    )
     args = p.parse_args(argv)
+    args.drift_kinds = drift.kinds_for(args.only, args.quick)
+    if args.drift_only:
+        args.only = [f"demo-{kind}" for kind in args.drift_kinds]
     args.names = args.only or (list(QUICK_DATASETS) if args.quick else list(datasets.NAMES))
     args.minutes = args.minutes if args.minutes is not None else (0.5 if args.quick else 2.5)
     args.speed_repeats = 5 if args.quick else 30
@@ -143,6 +155,9 @@ def main(argv: list[str] | None = None) -> int:
         "ablation": {},
         "best_peers": {},
     }
+    if args.drift_only:
+        run_drift(args, result, {})
+        return finish(args, result, started)
     bundles = run_quality(args, result)
     # the speed, memory and service sections use one trained whole-image bundle, elpv-pooled where it was run
     ref = "elpv-pooled" if "elpv-pooled" in bundles else next(iter(bundles), None)
@@ -181,6 +196,30 @@ def main(argv: list[str] | None = None) -> int:
             burst_seconds=args.service_burst_seconds,
         )
         result["memory"]["service"] = memory.service_memory(result["service"]) or result["service"].get("skipped")
+    if "drift" not in args.skip:
+        run_drift(args, result, bundles)
+    return finish(args, result, started)
+
+
+def run_drift(args, result: dict, bundles: dict[str, Path]) -> None:
+    """The drift section; reuses the quality section's bundle of a demo set where it ran (`bundles`)."""
+    if not args.drift_kinds:
+        result["drift"] = {"skipped": "no demo part kind among --only"}
+        return
+    log(f"drift: false alarms and detection delay on {', '.join(args.drift_kinds)}")
+    result["drift"] = drift.section(
+        args.drift_kinds,
+        cache=args.cache,
+        bundle_dir=args.out.parent / "bundles",
+        bundles=bundles,
+        steps=args.drift_steps,
+        quick=args.quick,
+        log=log,
+    )
+    write(result, args.out)
+
+
+def finish(args, result: dict, started: float) -> int:
     result["machine"]["load_average_at_end"] = [round(v, 2) for v in os.getloadavg()]
     result["seconds"] = round(time.monotonic() - started, 1)
     write(result, args.out)
@@ -189,6 +228,13 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def print_summary(result: dict) -> None:
+    if result["quality"]:
+        print_quality(result)
+    print_sections(result)
+    print(f"\n{result['seconds']:.0f} s in all")
+
+
+def print_quality(result: dict) -> None:
     print("\n## Image AUROC (higher is better)\n")
     print(quality.markdown_table(result["quality"]))
     print("\n## Best peer per dataset\n")
@@ -208,6 +254,9 @@ def print_summary(result: dict) -> None:
         kg = rows["knowngood"]
         tiles = f", {kg['tile']} px tiles" if kg.get("tile") else ""
         print(f"- {name}: {kg['train_seconds']:.0f} s ({kg['steps']} steps in {kg['fit_seconds']:.0f} s{tiles})")
+
+
+def print_sections(result: dict) -> None:
     sp = result.get("speed", {})
     if "by_size" in sp:
         print("\n## Inspection speed by size (every term, heatmap and score included)\n")
@@ -234,7 +283,13 @@ def print_summary(result: dict) -> None:
     crowd = result.get("service", {}).get("clients_32", {})
     if "rate_503" in crowd:
         print(f"Service at 32 clients: {crowd['requests']} requests, 503 share {crowd['rate_503']:.1%}")
-    print(f"\n{result['seconds']:.0f} s in all")
+    if "settings" in result.get("drift", {}):
+        d = result["drift"]["settings"]
+        print(
+            f"\n## Drift monitor (window {d['window']}, min {d['min_images']} images, {d['sigmas']:g} sigmas): "
+            f"false alarms on fresh known-good images; changed images until drifting (median of {d['repeats']})\n"
+        )
+        print(drift.markdown(result["drift"]))
 
 
 if __name__ == "__main__":

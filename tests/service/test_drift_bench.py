@@ -59,12 +59,20 @@ def test_known_good_features_raise_no_alarm():
 
 def test_delay_counts_the_changed_images_until_drifting():
     frechet = _reference()
-    delay, before, ratio = drift.detection_delay(frechet, _good(40, 3), _good(30, 4) + SHIFT, **MONITOR)
-    assert (delay, before) == (1, 0)  # one far-off image among 20 already doubles the spread
-    assert ratio > 10
-    delay, before, ratio = drift.detection_delay(frechet, _good(40, 3), _good(30, 4), **MONITOR)
-    assert (delay, before) == (None, 0)  # a "change" to the same known-good distribution is never found
-    assert ratio < 1
+    found = drift.detection_delay(frechet, _good(40, 3), _good(30, 4) + SHIFT, **MONITOR)
+    assert (found.images, found.alarms_before, found.drifting_at_change) == (1, 0, False)  # one far-off image will do
+    assert found.final_ratio > 10
+    found = drift.detection_delay(frechet, _good(40, 3), _good(30, 4), **MONITOR)
+    assert (found.images, found.alarms_before) == (None, 0)  # a "change" to the same known-good distribution
+    assert found.final_ratio < 1
+
+
+def test_delay_says_when_the_state_was_already_drifting_at_the_change():
+    good = _good(40, 3)
+    good[-1] += SHIFT  # a far-off known-good image just before the change: a false alarm the delay would inherit
+    found = drift.detection_delay(_reference(), good, _good(30, 4) + SHIFT, **MONITOR)
+    assert found.drifting_at_change and found.alarms_before == 1
+    assert found.images == 1
 
 
 def test_changes_do_what_they_say():
@@ -103,7 +111,13 @@ def test_another_material_drifts_and_the_known_good_images_do_not(tiny, tiny_goo
     other = drift.features(det, drift.render_fresh("bracket", 24, size=32))  # a stamped plate, not a soft blob
     reports = drift.assessed(drift.stream_reports(frechet, good, **MONITOR))
     assert [r.status for r in reports] == ["ok"] * 5  # images 20 .. 24
-    delay, before, ratio = drift.detection_delay(frechet, good, other, **MONITOR)
-    assert before == 0
-    assert delay is not None and delay <= len(frechet["holdout_features"]) // 2
-    assert ratio > 1
+    found = drift.detection_delay(frechet, good, other, **MONITOR)
+    assert found.alarms_before == 0 and not found.drifting_at_change
+    assert found.images is not None and found.images <= len(frechet["holdout_features"]) // 2
+    assert found.final_ratio > 1
+
+
+def test_effective_dimension_counts_the_directions_the_spread_uses():
+    assert drift.effective_dimension(np.eye(16)) == 16
+    assert drift.effective_dimension(np.diag([1.0, 0.0, 0.0])) == 1
+    assert drift.effective_dimension(np.diag([1.0, 1.0, 0.01])) == pytest.approx(2.01**2 / 2.0001, abs=0.005)
