@@ -3,9 +3,11 @@
 Sections of the JSON: datasets, quality (per dataset: knowngood and the peers), ablation (per dataset: the same
 trained nets with other terms, and on the tiled dataset knowngood at 128 px), best_peers, speed (a trained
 bundle; 128 and 256 px, batch 1 and 32, eager and ONNX Runtime; tiled inspection in s per megapixel), memory,
-service, drift (false alarms and detection delay of the drift monitor per demo part kind; `drift.py`; alone with
-`--drift-only`), machine, settings. Training time per dataset: `train_seconds` in each knowngood row. The JSON is
-rewritten after every dataset, so a long run that is stopped still leaves what it measured.
+service, instances (two services on one PostgreSQL against one: throughput, and the seconds until a swap on one is
+served by the other; `bench_instances.py`, alone with `python -m tests.bench.bench_instances MODEL`), drift (false
+alarms and detection delay of the drift monitor per demo part kind; `drift.py`; alone with `--drift-only`),
+machine, settings. Training time per dataset: `train_seconds` in each knowngood row. The JSON is rewritten
+after every dataset, so a long run that is stopped still leaves what it measured.
 """
 
 from __future__ import annotations
@@ -22,7 +24,7 @@ from pathlib import Path
 import torch
 from knowngood.training import bundle
 
-from tests.bench import datasets, drift, memory, quality, speed
+from tests.bench import bench_instances, datasets, drift, memory, quality, speed
 
 QUICK_DATASETS = ("elpv-mono", "demo-bracket")
 
@@ -53,7 +55,7 @@ def parse_args(argv: list[str] | None = None) -> argparse.Namespace:
         "--skip",
         action="append",
         default=[],
-        choices=("speed", "memory", "service", "drift"),
+        choices=("speed", "memory", "service", "instances", "drift"),
         help="leave a section out (repeatable)",
     )
     p.add_argument(
@@ -196,6 +198,13 @@ def main(argv: list[str] | None = None) -> int:
             burst_seconds=args.service_burst_seconds,
         )
         result["memory"]["service"] = memory.service_memory(result["service"]) or result["service"].get("skipped")
+    if "instances" not in args.skip and ref is not None:
+        log("instances: one vs two services on one PostgreSQL, and how fast a swap reaches the other instance")
+        try:
+            result["instances"] = bench_instances.run(bundles[ref])
+        except RuntimeError as exc:  # no PostgreSQL server binaries here: say so in the JSON
+            result["instances"] = {"skipped": str(exc)}
+        write(result, args.out)
     if "drift" not in args.skip:
         run_drift(args, result, bundles)
     return finish(args, result, started)
