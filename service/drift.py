@@ -19,6 +19,7 @@ from knowngood.training.frechet import frechet_distance, gaussian_stats, referen
 Status = Literal["ok", "drifting", "not_enough_images", "no_reference"]
 STATES: tuple[str, ...] = get_args(Status)  # every state an assessment can be in (/metrics shows each)
 STD_FLOOR = 0.1  # the reference spread is at least this share of its mean (a tiny holdout can give almost none)
+REFERENCE_SUBSETS = 64  # holdout subsets the reference is taken over: 8 gave a spread too noisy (bench `drift`)
 
 
 @dataclass(frozen=True)
@@ -104,6 +105,10 @@ class DriftMonitor:
     def _reference_at(self, n: int) -> tuple[float, float]:
         if n not in self._reference:
             self._reference[n] = reference_distance(
-                self.frechet["holdout_features"], n, mu=self.frechet["train_mu"], sigma=self.frechet["train_sigma"]
+                self.frechet["holdout_features"],
+                n,
+                mu=self.frechet["train_mu"],
+                sigma=self.frechet["train_sigma"],
+                repeats=REFERENCE_SUBSETS,
             )
         return self._reference[n]
