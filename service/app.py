@@ -77,7 +77,7 @@ def open_state(settings: Settings, metrics: Metrics) -> ServiceState:
 
 
 def _serve(state: ServiceState, start: restore.Start) -> None:
-    slot = state.parts.ensure(start.part_type, startup_sha256=start.startup_sha256)
+    slot = state.parts.ensure(start.part_type)
     slot.startup_sha256 = start.startup_sha256
     if start.current is None:
         log.info("part type %s: no model (%s)", start.part_type, start.why)

@@ -16,12 +16,12 @@ class PartTypes:
         self._lock = threading.Lock()
         self._slots: dict[str, ModelSlot] = {}
 
-    def ensure(self, name: str, *, startup_sha256: str | None = None) -> ModelSlot:
+    def ensure(self, name: str) -> ModelSlot:
         """The slot of `name`, created (empty) if there is none yet."""
         with self._lock:
             slot = self._slots.get(name)
             if slot is None:
-                slot = self._slots[name] = ModelSlot(name, startup_sha256=startup_sha256)
+                slot = self._slots[name] = ModelSlot(name)
             return slot
 
     def slots(self) -> list[ModelSlot]:

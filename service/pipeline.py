@@ -4,6 +4,7 @@ Nothing is stored unless every image of the request is accepted; rows are commit
 from __future__ import annotations
 
 import base64
+import dataclasses
 import datetime as dt
 import hashlib
 import logging
@@ -87,17 +88,16 @@ def inspect_uploads(
             raise BadImage(f"{u.name}: the model gives a non-finite score for this image; it is not recorded")
     ids = [new_id() for _ in uploads]
     now, elapsed = utc_now(), (time.perf_counter() - start) * 1000
-    verdicts = [verdict_for(float(score), model.detector.threshold) for score in scores]
-    kept = [_keep_image(state.settings, v, i) for v, i in zip(verdicts, ids)]
     records = [
-        _record(ids[i], now, u, decoded[i], float(scores[i]), model, caller, station, elapsed, slot.part_type, kept[i])
+        _record(ids[i], now, u, decoded[i], float(scores[i]), model, caller, station, elapsed, slot.part_type)
         for i, u in enumerate(uploads)
     ]
+    records = [dataclasses.replace(r, image_kept=_keep_image(state.settings, r.verdict, r.id)) for r in records]
     out = [_created(r, decoded[i], heats[i].numpy(), inline=inline) for i, r in enumerate(records)]
     files = [
         StoredFiles(
             heatmap=heatmap_bytes(HeatmapRecord(heat=heats[i].numpy(), view=d.view, height=d.height, width=d.width)),
-            image=_reread(uploads[i]) if kept[i] else None,
+            image=_reread(uploads[i]) if records[i].image_kept else None,
             embedding=np.asarray(features[i], dtype=np.float32).tobytes(),
         )
         for i, d in enumerate(decoded)
@@ -160,14 +160,12 @@ def _record(
     station: str | None,
     elapsed: float,
     part_type: str,
-    image_kept: bool,
 ) -> InspectionRecord:
     det = model.detector
     return InspectionRecord(
         id=inspection_id,
         time=now,
         part_type=part_type,
-        image_kept=image_kept,
         station=station,
         part_id=upload.part_id,
         caller=caller.name,
