@@ -65,7 +65,7 @@ class Settings(BaseSettings):
     retention_days: float = Field(90.0, gt=0)  # files older than this are deleted; audit rows are kept
     drift_window: int = Field(200, ge=2)  # recent production images compared with the training reference
     drift_min_images: int = Field(20, ge=2)  # fewer than this: drift says "not enough images"
-    drift_sigmas: float = Field(3.0, gt=0)  # drifting when distance > reference mean + this many std
+    drift_sigmas: float = Field(3.0, gt=0)  # drifting as rarely as a normal beyond this many std (drift.tail_limit)
     log_level: Literal["critical", "error", "warning", "info", "debug"] = "info"
 
     @field_validator("keep_images", mode="before")

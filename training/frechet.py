@@ -15,7 +15,7 @@ def gaussian_stats(features: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     x = np.asarray(features, dtype=np.float64)
     if x.ndim != 2 or len(x) < 2:
         raise ValueError(f"need an (N >= 2, F) array of features, got shape {x.shape}")
-    return x.mean(0), np.cov(x, rowvar=False)
+    return x.mean(0), np.atleast_2d(np.cov(x, rowvar=False))  # one feature: (1, 1), not a scalar
 
 
 def _sqrtm_trace(s1: np.ndarray, s2: np.ndarray) -> float:
