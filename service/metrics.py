@@ -29,7 +29,7 @@ DRIFT_GAUGES = {  # DriftReport field -> (metric name, help)
     "images": ("knowngood_drift_images", "Production images in the served model's drift window."),
     "distance": (
         "knowngood_drift_distance",
-        "Fréchet distance of the recent production images to the training images (critic features).",
+        "Fréchet distance of the recent production images to the training images (whitened critic features).",
     ),
     "reference_mean": (
         "knowngood_drift_reference_mean",

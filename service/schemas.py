@@ -185,7 +185,8 @@ class ModelEventList(BaseModel):
 
 
 class DriftOut(BaseModel):
-    """Fréchet distance on critic features: recent production images against the training reference."""
+    """Fréchet distance on the critic's features (whitened leading principal components): recent production
+    images against the training reference."""
 
     status: Status
     drifting: bool | None = Field(description="null while there is not enough to say")
@@ -198,7 +199,9 @@ class DriftOut(BaseModel):
     distance: float | None
     reference_mean: float | None = Field(description="distance of n known-good holdout images, mean")
     reference_std: float | None
-    limit: float | None = Field(description="drifting when distance > limit")
+    limit: float | None = Field(
+        description="drifting when distance > limit: the reference's tail quantile (drift_sigmas, as a normal's)"
+    )
 
 
 class PartTypeOut(BaseModel):

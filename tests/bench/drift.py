@@ -18,7 +18,8 @@ minimum images, sigmas from `service.settings.Settings`):
    not within `max_changed`), median over `repeats` streams with other images each (`delay`: every run, the
    false alarms before the change, and `runs_drifting_at_change`, whose delay is inherited from a false alarm).
    The figures hold for this model and its holdout: the limit comes from that holdout, and another draw of it
-   gives another false-alarm rate; `feature_effective_dimension` says how few directions the features use.
+   gives another false-alarm rate; `feature_effective_dimension` says how few directions the raw features use
+   (the monitor compares whitened principal components, `service.drift.Whitening`).
 
 Every image reaches the model as the service gets it: a PNG file (the changed ones quantised to 8 bits like a
 camera's) decoded by `training.data.decode_image`. Features come from `Detector.embed_images`, checked on a sample
@@ -278,8 +279,8 @@ def model_for(kind: str, *, cache: Path, bundles: dict, steps: int, bundle_dir: 
 
 
 def effective_dimension(sigma: np.ndarray) -> float:
-    """(Σλ)² / Σλ² of a covariance's eigenvalues: how many directions the spread really uses. Few: a window's
-    distance is far from Gaussian, and mean + k std says less about its tail."""
+    """(Σλ)² / Σλ² of a covariance's eigenvalues: how many directions the spread really uses. Few: on the raw
+    features the distance would hear little but the loudest direction, which is why the monitor whitens them."""
     lam = np.clip(np.linalg.eigvalsh(sigma), 0, None)
     return round(float(lam.sum() ** 2 / (lam**2).sum()), 2)
 
