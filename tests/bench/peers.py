@@ -106,16 +106,33 @@ class PatchMemoryPeer:
 
     name = "patch-memory"
 
-    def __init__(self, memory_size: int = ModelConfig.memory_size, *, seed: int = 0, batch: int = 8):
+    def __init__(
+        self,
+        memory_size: int = ModelConfig.memory_size,
+        *,
+        seed: int = 0,
+        batch: int = 8,
+        pool: int = 1,
+        feature_scale: int = 1,
+    ):
         # batch 8 at 128 px: the distance matrix is 8 x 1024 positions x 4096 entries, 128 MB
         self.memory_size, self.seed, self.batch = memory_size, seed, batch
+        # levers (`memory_levers.py`), off by default: the patch features averaged over pool x pool cells (a
+        # coarser stride, pool² fewer positions to search), and the images enlarged feature_scale x before the
+        # backbone (features at a finer scale of the image, feature_scale² more positions)
+        self.pool, self.feature_scale = pool, feature_scale
+
+    def _features(self, x: torch.Tensor) -> torch.Tensor:
+        if self.feature_scale != 1:
+            x = F.interpolate(x, scale_factor=self.feature_scale, mode="bilinear", align_corners=False)
+        phi = local_average(self.net(x))
+        return F.avg_pool2d(phi, self.pool) if self.pool > 1 else phi
 
     @torch.inference_mode()
     def fit(self, train: torch.Tensor) -> PatchMemoryPeer:
         self.net = load_pretrained()
-        patches = torch.cat(
-            [as_patches(local_average(self.net(train[i : i + 32]))) for i in range(0, len(train), 32)]
-        )  # (N h w, F)
+        step = max(1, 32 // self.feature_scale**2)
+        patches = torch.cat([as_patches(self._features(train[i : i + step])) for i in range(0, len(train), step)])
         memory = build_memory(patches, self.memory_size, seed=self.seed)
         self.centre = memory.mean(0)  # stored centred, as nearest_distance expects (smaller float32 cancellation)
         self.memory = memory - self.centre
@@ -124,9 +141,9 @@ class PatchMemoryPeer:
 
     @torch.inference_mode()
     def score(self, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray]:
-        maps = []
-        for i in range(0, len(x), self.batch):
-            phi = local_average(self.net(x[i : i + self.batch]))  # (B, F, S/4, S/4)
+        maps, step = [], max(1, self.batch // self.feature_scale**2)  # the same distance matrix size
+        for i in range(0, len(x), step):
+            phi = self._features(x[i : i + step])  # (B, F, S/4, S/4) by default
             dist = nearest_distance(phi, self.memory, self.memory_sq, self.centre)  # (B, 1, S/4, S/4)
             maps.append(F.interpolate(dist, size=x.shape[-2:], mode="bilinear", align_corners=False)[:, 0])
         m = torch.cat(maps)

@@ -1,0 +1,75 @@
+"""Levers on the position-free memory, measured on the patch-memory peer (`peers.PatchMemoryPeer`, the memory term
+without the GAN) so that each costs minutes, not a training run: the coarser stride that would meet the speed
+goals, and features taken on an enlarged image, which fine textures might need.
+
+    python -m tests.bench.memory_levers [--out bench_out/memory_levers.json] NAME ...   (datasets.NAMES)
+
+Per dataset and variant: image AUROC of the map's maximum (PatchCore's score) and of the mean of its top 0.3 %
+(knowngood's image score, `ModelConfig.top_fraction`), and the seconds per image of features + search, one thread.
+These are the benchmark's own test splits: the figures are design evidence for the README's table of levers, not
+independent test figures.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+from knowngood.training.config import ModelConfig
+from knowngood.training.data import to_model_input
+from sklearn.metrics import roc_auc_score
+
+from tests.bench import datasets
+from tests.bench.peers import PatchMemoryPeer
+
+SIZE = 128  # the benchmark's working size
+TOP_FRACTION = ModelConfig.top_fraction  # 0.3 %
+VARIANTS = {
+    "stride 4 (default)": {},
+    "stride 8": {"pool": 2},
+    "features on the image enlarged 2x": {"feature_scale": 2},
+}
+
+
+def measure(ds: datasets.Dataset) -> dict:
+    x_train = to_model_input(ds.train, size=SIZE, channels=ds.channels)
+    x_test = to_model_input(ds.test, size=SIZE, channels=ds.channels)
+    out = {}
+    for name, kw in VARIANTS.items():
+        peer = PatchMemoryPeer(**kw).fit(x_train)
+        start = time.perf_counter()
+        scores, maps = peer.score(x_test)
+        seconds = (time.perf_counter() - start) / len(x_test)
+        flat = maps.reshape(len(maps), -1)
+        k = max(1, round(TOP_FRACTION * flat.shape[1]))
+        top = np.sort(flat, axis=1)[:, -k:].mean(1)
+        out[name] = {
+            "auroc_max": round(float(roc_auc_score(ds.labels, scores)), 4),
+            "auroc_top": round(float(roc_auc_score(ds.labels, top)), 4),
+            "ms_per_image": round(seconds * 1000, 1),
+        }
+    return out
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("names", nargs="+", choices=datasets.NAMES[:-1])  # 128 px sets (the large one is tiled)
+    ap.add_argument("--out", type=Path, default=Path("bench_out/memory_levers.json"))
+    ap.add_argument("--cache", type=Path, default=Path("bench_out/cache"))
+    args = ap.parse_args(argv)
+    torch.set_num_threads(1)
+    result = {}
+    for name in args.names:
+        result[name] = measure(datasets.load(name, args.cache))
+        print(name, json.dumps(result[name]), flush=True)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.write_text(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
