@@ -1,5 +1,6 @@
 """The audit store's queries, in SQLAlchemy Core: one text for SQLite and PostgreSQL. Each takes its connection
-first and keyword-only arguments; the caller owns the transaction (`store.Store` opens them)."""
+first and keyword-only arguments; the caller owns the transaction (`store.Store` opens them). One statement, the
+upsert of what a part type serves, takes each dialect's own form of the same SQL."""
 
 from __future__ import annotations
 
@@ -17,6 +18,7 @@ from knowngood.service.store_records import (
 )
 from knowngood.service.store_tables import bundles, inspection_files, inspections, model_events, reviews, served
 from sqlalchemy import Connection, delete, exists, func, insert, not_, select, update
+from sqlalchemy.dialects import postgresql, sqlite
 
 _CURRENT_REVIEW = ("review_label", "review_operator", "review_time", "review_defect_class", "review_note")
 _ROW = [f.name for f in fields(InspectionRecord) if not f.name.startswith("review_")]  # stored on the row
@@ -128,10 +130,22 @@ def insert_model_event(conn: Connection, *, event: ModelEvent, serving: Serving 
             "startup_sha256": serving.startup_sha256,
             "event_seq": seq,
         }
-        changed = conn.execute(update(served).where(served.c.part_type == event.part_type).values(**values))
-        if not changed.rowcount:
-            conn.execute(insert(served).values(part_type=event.part_type, **values))
+        conn.execute(_upsert_served(conn, event.part_type, values))
     return int(seq)
+
+
+def _upsert_served(conn: Connection, part_type: str, values: dict):
+    """INSERT ... ON CONFLICT (part_type) DO UPDATE, in the dialect's own syntax (both PostgreSQL and SQLite have
+    it): two instances starting a new part type at once both succeed, where an update-then-insert let the second
+    fail on the primary key. The row only moves forward: a transaction that commits after a newer event's (its seq
+    taken first) leaves the newer one served, so every instance's follower converges on one model."""
+    dialect = postgresql if conn.dialect.name == "postgresql" else sqlite
+    stmt = dialect.insert(served).values(part_type=part_type, **values)
+    return stmt.on_conflict_do_update(
+        index_elements=[served.c.part_type],
+        set_={name: stmt.excluded[name] for name in values},
+        where=served.c.event_seq < stmt.excluded.event_seq,
+    )
 
 
 def select_served(conn: Connection, *, part_type: str | None = None) -> list[Serving]:

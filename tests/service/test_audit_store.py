@@ -22,7 +22,13 @@ from knowngood.service.store import (
     database_url,
     utc_now,
 )
-from knowngood.service.store_queries import count_selected, insert_inspections, select_inspections
+from knowngood.service.store_queries import (
+    _upsert_served,
+    count_selected,
+    insert_inspections,
+    insert_model_event,
+    select_inspections,
+)
 from knowngood.service.store_schema import MIGRATED_CALLER
 from service_testkit import STATION_AUTH, png_bytes, post_image
 from sqlalchemy import create_engine, text
@@ -364,3 +370,60 @@ def test_a_schema_3_sqlite_store_is_taken_over_by_the_migrations(tmp_path):
         assert store.get_inspection(inspection_id=_rec(1).id).part_type == "default"
     finally:
         store.close()
+
+
+def _load_event(part_type: str, sha: str) -> ModelEvent:
+    return ModelEvent(
+        time=utc_now(), kind="load", model_id="m", model_sha256=sha * 64, threshold=1.0, caller="c", part_type=part_type
+    )
+
+
+def test_what_a_part_type_serves_only_moves_forward(store):
+    newer = store.add_model_event(event=_load_event("gear", "e"), serving=Serving("e" * 64, None, None))
+    # a write that carries an older event's seq (its transaction committed after the newer one's) is ignored
+    with store.engine.begin() as conn:
+        conn.execute(
+            _upsert_served(
+                conn,
+                "gear",
+                {"current_sha256": "f" * 64, "previous_sha256": None, "startup_sha256": None, "event_seq": newer - 1},
+            )
+        )
+    assert (store.serving("gear").current_sha256, store.serving("gear").event_seq) == ("e" * 64, newer)
+
+
+def test_two_instances_starting_a_new_part_type_at_once_both_succeed(postgres):
+    # the race, made deterministic: the other instance has inserted the part type's row but not yet committed; this
+    # instance's write must wait for it and then succeed, not fail on the primary key (it did before the upsert)
+    url = postgres.new_database()
+    one, two = Store(url), Store(url)
+    try:
+        other = two.engine.connect()
+        tx = other.begin()
+        theirs = insert_model_event(other, event=_load_event("gear", "a"), serving=Serving("a" * 64, None, None))
+        outcome = {}
+
+        def ours():
+            try:
+                outcome["seq"] = one.add_model_event(
+                    event=_load_event("gear", "b"), serving=Serving("b" * 64, None, None)
+                )
+            except Exception as exc:  # noqa: BLE001 - the test reports whatever the write raised
+                outcome["error"] = exc
+
+        writer = threading.Thread(target=ours)
+        writer.start()
+        writer.join(1.0)
+        assert writer.is_alive()  # waiting on the other transaction's row
+        tx.commit()
+        other.close()
+        writer.join(30)
+        assert "error" not in outcome, outcome.get("error")
+        assert outcome["seq"] > theirs
+        served = one.serving("gear")
+        assert (served.current_sha256, served.event_seq) == ("b" * 64, outcome["seq"])  # the newer event is served
+        assert two.serving("gear") == served
+        assert [e.model_sha256[0] for e in one.model_events(part_type="gear")] == ["b", "a"]  # both events recorded
+    finally:
+        one.close()
+        two.close()
