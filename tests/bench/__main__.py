@@ -179,9 +179,10 @@ def main(argv: list[str] | None = None) -> int:
         args.skip += ["memory", "service"]  # they need a whole-image bundle
         result["memory"]["skipped"] = "no whole-image dataset was run"
     if "memory" not in args.skip:
-        log(f"memory: one `knowngood train` of {args.memory_steps} steps on the {ref} training images")
+        n = 200 if args.quick else memory.TARGET_IMAGES
+        log(f"memory: one `knowngood train` of {args.memory_steps} steps on {n} images ({ref} training images)")
         result["memory"]["training"] = memory.training_peak_rss(
-            datasets.native_images(ref, args.cache, "train"), steps=args.memory_steps
+            memory.cycled(datasets.native_images(ref, args.cache, "train"), n), steps=args.memory_steps
         )
         write(result, args.out)
     if "service" not in args.skip:

@@ -1,0 +1,41 @@
+"""Bench helpers that the README's figures rest on: the images the training-memory figure is taken on
+(`tests/bench/memory.py`), and the patch-memory peer's levers (`tests/bench/memory_levers.py`)."""
+
+from __future__ import annotations
+
+import numpy as np
+import torch
+from knowngood.training.metrics import image_auroc
+
+from tests.bench.memory import cycled
+from tests.bench.peers import PatchMemoryPeer
+
+
+def test_cycled_gives_as_many_images_as_asked_and_no_two_alike():
+    rng = np.random.default_rng(0)
+    images = [rng.uniform(size=(1, 8, 8)).astype(np.float32) for _ in range(3)]
+    out = cycled(images, 7)
+    assert len(out) == 7 and all(im.shape == (1, 8, 8) for im in out)
+    np.testing.assert_array_equal(out[3], images[0][..., ::-1])  # the second round mirrored left-right
+    np.testing.assert_array_equal(out[6], images[0])  # the third as they were
+    firsts = out[:6]
+    assert len({im.tobytes() for im in firsts}) == 6
+    assert len(cycled(images, 2)) == 2
+
+
+def _scene(rng, defect: bool) -> torch.Tensor:
+    x = 0.5 + 0.05 * rng.standard_normal((1, 64, 64))
+    if defect:
+        x[:, 20:32, 30:42] = 1.0  # a bright blob no known-good image has
+    return torch.tensor(np.clip(x, 0, 1), dtype=torch.float32)
+
+
+def test_every_lever_of_the_peer_still_finds_a_plain_defect():
+    rng = np.random.default_rng(1)
+    train = torch.stack([_scene(rng, False) for _ in range(6)])
+    test = torch.stack([_scene(rng, d) for d in (False, False, True, True)])
+    labels = np.array([0, 0, 1, 1])
+    for kw in ({}, {"pool": 2}, {"feature_scale": 2}):
+        scores, maps = PatchMemoryPeer(memory_size=256, **kw).fit(train).score(test)
+        assert maps.shape == (4, 64, 64)
+        assert image_auroc(labels, scores) == 1.0, kw
