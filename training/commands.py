@@ -7,16 +7,15 @@ import datetime as dt
 import json
 import os
 import sys
-from collections import Counter
 from pathlib import Path
 
 import numpy as np
 from knowngood.training import bundle, runtime
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import fingerprint, list_images, load_folder, min_side_for, read_image, skip_reason
+from knowngood.training.data import expand_paths, fingerprint, load_folder, min_side_for, read_image, skip_reason
 from knowngood.training.detector import Detector
-from knowngood.training.errors import BadBundle, BadConfig, BadDataset, BadImage
-from knowngood.training.heatmap import heatmap_png_bytes
+from knowngood.training.errors import BadBundle, BadConfig, BadImage
+from knowngood.training.heatmap import heatmap_names, heatmap_png_bytes
 from knowngood.training.selection import term_summary
 from knowngood.training.train import continued_config, scale_note, train_bundle
 from knowngood.training.tuning import threshold_for_catch, threshold_for_false_reject
@@ -276,41 +275,6 @@ def _folder_text(folder: str | None, sha: str | None) -> str:
     return f"{where} (fingerprint {sha})" if sha else where
 
 
-def _expand(paths: list[Path]) -> list[Path]:
-    files: list[Path] = []
-    for p in paths:
-        if p.is_dir():
-            files.extend(list_images(p))
-        elif p.is_file():
-            files.append(p)
-        else:
-            raise BadDataset(f"{p}: no such file or folder")
-    if not files:
-        raise BadDataset(f"no images found in {', '.join(map(str, paths))}")
-    return files
-
-
-def heatmap_names(files: list[Path]) -> dict[Path, str]:
-    """One file name (no suffix) per input image for `inspect --heatmaps`: the image's stem, or, where several
-    images share a stem (the same numbering in two folders), its path below their common folder with `_` for
-    `/` (pit/0001.png -> pit_0001); a `-2`, `-3` suffix settles anything still equal. A file given twice keeps
-    one name."""
-    unique = list(dict.fromkeys(p.resolve() for p in files))
-    count = Counter(p.stem for p in unique)
-    shared = [p.parent for p in unique if count[p.stem] > 1]
-    root = Path(os.path.commonpath(shared)) if shared else None
-    named: dict[Path, str] = {}
-    used: set[str] = set()
-    for p in unique:
-        base = p.stem if count[p.stem] == 1 else "_".join(p.with_suffix("").relative_to(root).parts)
-        name, k = base, 2
-        while name in used:
-            name, k = f"{base}-{k}", k + 1
-        named[p] = name
-        used.add(name)
-    return {p: named[p.resolve()] for p in files}
-
-
 def inspect(args) -> int:
     _positive("--batch", args.batch)
     if args.heatmaps is not None and args.heatmaps.exists() and not args.heatmaps.is_dir():
@@ -318,7 +282,7 @@ def inspect(args) -> int:
     det, _ = bundle.load(args.model)
     if runtime.available():
         det.use_onnx()  # the same graph and weights as eager PyTorch, about 3x faster on a CPU (tests pin equality)
-    files = _expand(args.paths)
+    files = expand_paths(args.paths)
     min_side = min_side_for(det.cfg.size)  # the service's limit for this model, too
     names = {}
     if args.heatmaps is not None:

@@ -300,3 +300,18 @@ def load_folder(folder: Path, *, skip_bad: bool = False, min_count: int = 1, **l
     if len(images) < min_count:
         raise BadDataset(f"{folder}: found {len(images)} readable images, need at least {min_count}")
     return ImageSet(paths=paths, images=images, skipped=skipped, folder=Path(folder))
+
+
+def expand_paths(paths: list[Path]) -> list[Path]:
+    """The image files named on a command line: files as given, folders walked (`list_images`)."""
+    files: list[Path] = []
+    for p in paths:
+        if p.is_dir():
+            files.extend(list_images(p))
+        elif p.is_file():
+            files.append(p)
+        else:
+            raise BadDataset(f"{p}: no such file or folder")
+    if not files:
+        raise BadDataset(f"no images found in {', '.join(map(str, paths))}")
+    return files

@@ -1,12 +1,16 @@
 """Heatmap overlays for people: the image with a red-to-yellow tint whose opacity rises with the heat.
 
-Pure numpy and Pillow, no plotting library, so the service can draw one per request in a few milliseconds.
+Pure numpy and Pillow, no plotting library, so the service can draw one per request in a few milliseconds; and the
+file names `inspect --heatmaps` gives the overlays.
 Heat is in the anomaly score's unit: higher = less like the known-good parts.
 """
 
 from __future__ import annotations
 
 import io
+import os
+from collections import Counter
+from pathlib import Path
 
 import numpy as np
 from PIL import Image
@@ -44,3 +48,24 @@ def heatmap_png_bytes(image: np.ndarray, heatmap: np.ndarray, vmax: float) -> by
     buf = io.BytesIO()
     overlay_png(image, heatmap, vmax).save(buf, format="PNG", compress_level=1)
     return buf.getvalue()
+
+
+def heatmap_names(files: list[Path]) -> dict[Path, str]:
+    """One file name (no suffix) per input image for `inspect --heatmaps`: the image's stem, or, where several
+    images share a stem (the same numbering in two folders), its path below their common folder with `_` for
+    `/` (pit/0001.png -> pit_0001); a `-2`, `-3` suffix settles anything still equal. A file given twice keeps
+    one name."""
+    unique = list(dict.fromkeys(p.resolve() for p in files))
+    count = Counter(p.stem for p in unique)
+    shared = [p.parent for p in unique if count[p.stem] > 1]
+    root = Path(os.path.commonpath(shared)) if shared else None
+    named: dict[Path, str] = {}
+    used: set[str] = set()
+    for p in unique:
+        base = p.stem if count[p.stem] == 1 else "_".join(p.with_suffix("").relative_to(root).parts)
+        name, k = base, 2
+        while name in used:
+            name, k = f"{base}-{k}", k + 1
+        named[p] = name
+        used.add(name)
+    return {p: named[p.resolve()] for p in files}

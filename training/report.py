@@ -13,17 +13,13 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-import matplotlib
 import numpy as np
+from knowngood.training import __version__
+from knowngood.training import report_plots as plot
+from knowngood.training.heatmap import overlay_png
+from knowngood.training.metrics import average_precision, image_auroc, pixel_auroc, pro_score
+from knowngood.training.tuning import Rate, ThresholdChoice, per_class_catch
 from PIL import Image
-from sklearn import metrics as skm
-
-matplotlib.use("Agg")  # files only, never a window; must precede the pyplot import
-import matplotlib.pyplot as plt  # noqa: E402
-from knowngood.training import __version__  # noqa: E402
-from knowngood.training.heatmap import overlay_png  # noqa: E402
-from knowngood.training.metrics import average_precision, image_auroc, pixel_auroc, pro_score  # noqa: E402
-from knowngood.training.tuning import Rate, ThresholdChoice, per_class_catch  # noqa: E402
 
 if TYPE_CHECKING:  # comparison builds on this module; the report only calls its section
     from knowngood.training.comparison import Comparison
@@ -122,82 +118,6 @@ def holdout_warnings(m: dict) -> list[str]:
 
 
 # ---------------------------------------------------------------- plots (one PNG each)
-
-
-def _save(fig, path: Path) -> str:
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
-    return path.name
-
-
-def _plot_roc(out: Path, y, s, fr: dict, catch: dict) -> str:
-    fpr, tpr, _ = skm.roc_curve(y, s)
-    fig, ax = plt.subplots(figsize=(4.5, 4))
-    ax.plot(fpr, tpr, label="ROC")
-    ax.plot([0, 1], [0, 1], ls=":", c="grey", label="chance")
-    ax.plot(fr["rate"], catch["rate"], "o", c="crimson", label="threshold")
-    ax.set(xlabel="false-reject rate (good flagged)", ylabel="catch rate (defective flagged)", title="ROC")
-    ax.legend(loc="lower right")
-    return _save(fig, out / "roc.png")
-
-
-def _plot_pr(out: Path, y, s, t: float) -> str:
-    precision, recall, _ = skm.precision_recall_curve(y, s)
-    flagged = s > t
-    fig, ax = plt.subplots(figsize=(4.5, 4))
-    ax.step(recall, precision, where="post", label="precision-recall")
-    if flagged.any():  # the operating point: recall = catch rate, precision = share of flagged that are defective
-        ax.plot(
-            (flagged & (y == 1)).sum() / (y == 1).sum(), (y[flagged] == 1).mean(), "o", c="crimson", label="threshold"
-        )
-    ax.set(xlabel="recall (catch rate)", ylabel="precision (flagged that are defective)", ylim=(0, 1.02))
-    ax.set_title("Precision-recall")
-    ax.legend(loc="lower left")
-    return _save(fig, out / "precision_recall.png")
-
-
-def _plot_hist(out: Path, y, s, t: float) -> str:
-    bins = np.histogram_bin_edges(np.append(s, t), bins=30)
-    fig, ax = plt.subplots(figsize=(6, 3.5))
-    ax.hist(s[y == 0], bins=bins, alpha=0.6, label=f"good (n={int((y == 0).sum())})", color="tab:green")
-    ax.hist(s[y == 1], bins=bins, alpha=0.6, label=f"defective (n={int((y == 1).sum())})", color="tab:red")
-    ax.axvline(t, c="black", ls="--", label=f"threshold {t:.4g}")
-    ax.set(xlabel="anomaly score (higher = less like known-good)", ylabel="images", title="Scores")
-    ax.legend()
-    return _save(fig, out / "scores.png")
-
-
-def _plot_confusion(out: Path, cells: list[list[int]]) -> str:
-    counts = np.array(cells, dtype=float)
-    rates = counts / np.maximum(counts.sum(1, keepdims=True), 1)
-    fig, ax = plt.subplots(figsize=(4, 3.5))
-    ax.imshow(rates, cmap="Blues", vmin=0, vmax=1)
-    for i in range(2):
-        for j in range(2):
-            ax.text(
-                j,
-                i,
-                f"{int(counts[i, j])}\n{100 * rates[i, j]:.1f} %",
-                ha="center",
-                va="center",
-                color="white" if rates[i, j] > 0.5 else "black",
-            )
-    ax.set_xticks([0, 1], ["pass", "flag"])
-    ax.set_yticks([0, 1], ["good", "defective"])
-    ax.set(xlabel="verdict", ylabel="actual", title="Confusion matrix")
-    return _save(fig, out / "confusion.png")
-
-
-def _plot_per_class(out: Path, per_class: dict) -> str:
-    names = list(per_class)
-    rate = np.array([per_class[c]["rate"] for c in names])
-    err = np.array([rate - [per_class[c]["low"] for c in names], [per_class[c]["high"] for c in names] - rate])
-    fig, ax = plt.subplots(figsize=(max(4, 0.8 * len(names) + 2), 3.5))
-    ax.bar(names, rate, yerr=err, capsize=4, color="tab:blue")
-    ax.set(ylim=(0, 1.05), ylabel="catch rate", title="Catch rate per defect class (95 % CI)")
-    ax.tick_params(axis="x", rotation=30)
-    return _save(fig, out / "catch_per_class.png")
 
 
 # ---------------------------------------------------------------- gallery of the worst misses
@@ -352,11 +272,11 @@ def write_report(
     written = dt.datetime.now(dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     y, s, t = np.asarray(holdout.labels), np.asarray(holdout.scores, dtype=np.float64), float(choice.value)
     cells = [[int(((y == c) & (s <= t)).sum()), int(((y == c) & (s > t)).sum())] for c in (0, 1)]
-    plots = [_plot_hist(out, y, s, t), _plot_confusion(out, cells)]
+    plots = [plot.plot_hist(out, y, s, t), plot.plot_confusion(out, cells)]
     if m["image_auroc"] is not None:
-        plots = [_plot_roc(out, y, s, m["false_reject"], m["catch"]), _plot_pr(out, y, s, t), *plots]
+        plots = [plot.plot_roc(out, y, s, m["false_reject"], m["catch"]), plot.plot_pr(out, y, s, t), *plots]
     if m["per_class_catch"]:
-        plots.append(_plot_per_class(out, m["per_class_catch"]))
+        plots.append(plot.plot_per_class(out, m["per_class_catch"]))
     per_class = "".join(
         f"<tr><th>{_e(c)}</th><td>{r['n']}</td><td>{_e(rate_text(r))}</td></tr>"
         for c, r in m["per_class_catch"].items()

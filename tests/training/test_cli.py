@@ -12,10 +12,10 @@ import torch
 from knowngood.demo_parts import render_scenario
 from knowngood.training import bundle
 from knowngood.training.cli import main
-from knowngood.training.commands import heatmap_names
 from knowngood.training.config import ModelConfig
 from knowngood.training.data import MIN_SIDE, min_side_for
 from knowngood.training.detector import Detector
+from knowngood.training.heatmap import heatmap_names
 from knowngood.training.report import rate_text
 from PIL import Image
 
