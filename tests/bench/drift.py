@@ -6,13 +6,14 @@ number of steps (`--drift-steps`) on the same known-good images. Then, with the 
 minimum images, sigmas from `service.settings.Settings`):
 
 1. **False alarms.** FRESH known-good images, rendered with an rng key no training or holdout image uses
-   (`FRESH_SPLIT`), go through one `DriftMonitor` one image at a time, assessed after each as the service does
-   (`false_alarm_rate` over `assessments`). Those windows overlap (each assessment shares all but one image with
-   the one before), so the same images are also cut into disjoint windows of as many images as the monitor
-   compares (`compared_images`, from `DriftReport.n`), each fed to a fresh monitor and assessed once:
+   (`drift_images.FRESH_SPLIT`), go through one `DriftMonitor` one image at a time, assessed after each as the
+   service does (`false_alarm_rate` over `assessments`). Those windows overlap (each assessment shares all but
+   one image with the one before), so the same images are also cut into disjoint windows of as many images as the
+   monitor compares (`compared_images`, from `DriftReport.n`), each fed to a fresh monitor and assessed once:
    `independent_windows`, their alarms and a Clopper-Pearson 95 % upper bound on that rate.
 2. **Detection delay.** A stream of `good_before` fresh known-good images, then changed ones: brighter
-   (`GAIN`), blurred (Gaussian, `BLUR_SIGMA` px), shifted (`SHIFT_PX` px right and down, edge pixels repeated)
+   (`GAIN`), blurred (Gaussian, `BLUR_SIGMA` px), shifted (`SHIFT_PX` px right and down, edge pixels repeated;
+   the three in `drift_images.py`)
    and another material (fresh images of `MATERIAL[kind]`, converted to the model's colour mode as the service
    converts any upload). `delay_images` counts the changed images until the first `drifting` assessment (null:
    not within `max_changed`), median over `repeats` streams with other images each (`delay`: every run, the
@@ -29,34 +30,26 @@ against the service's own path (`score_and_embed` over the prepared inputs, each
 
 from __future__ import annotations
 
-import io
 import time
 from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
 import torch
-from knowngood.demo_parts.render import render
-from knowngood.demo_parts.scenario import image_rng
 from knowngood.service.drift import DriftMonitor, DriftReport
 from knowngood.service.settings import Settings
 from knowngood.training import bundle
-from knowngood.training.data import decode_image
 from knowngood.training.detector import Detector
 from knowngood.training.metrics import binomial_ci
-from PIL import Image
-from scipy import ndimage
 from threadpoolctl import threadpool_limits
 
 from tests.bench import datasets, knowngood_runner
+from tests.bench.drift_images import BLUR_SIGMA, FRESH_SPLIT, GAIN, SHIFT_PX, changed, render_fresh
 
-FRESH_SPLIT = 9  # scenario.image_rng's split key; render_scenario uses 0 (train), 1 (holdout good), 2 (defective)
 KINDS = ("bracket", "weave")  # the two kinds with a fixed layout: a stamped plate (gray), a woven fabric (RGB)
 MATERIAL = {"bracket": "weave", "weave": "bracket", "casting": "bracket"}  # "another material" for each kind
-GAIN, BLUR_SIGMA, SHIFT_PX = 1.15, 1.5, 4
 CHANGES = ("brightness", "blur", "shift", "material")
 FEATURE_TOLERANCE = 1e-4  # the fast path must give the service's features, up to float rounding
-SIZE = 128  # the demo sets' render size
 
 
 def _default(name: str):
@@ -85,49 +78,6 @@ def kinds_for(only: list[str] | None, quick: bool) -> list[str]:
     if only:
         return [datasets.DEMO[name] for name in only if name in datasets.DEMO]
     return ["bracket"] if quick else list(KINDS)
-
-
-# ---------------------------------------------------------------------------------------------------- images
-
-
-def camera(pixels: np.ndarray) -> np.ndarray:
-    """uint8 (H, W) or (H, W, 3) -> a PNG file -> (C, H, W) float32 as the service decodes an upload."""
-    buf = io.BytesIO()
-    Image.fromarray(pixels).save(buf, format="PNG")
-    return decode_image(buf.getvalue(), name="frame.png")
-
-
-def to_pixels(image: np.ndarray) -> np.ndarray:
-    """(C, H, W) float in [0, 1] (clipped, as a sensor saturates) -> uint8 (H, W) or (H, W, 3)."""
-    pixels = np.round(np.clip(image, 0, 1) * 255).astype(np.uint8)
-    return pixels[0] if pixels.shape[0] == 1 else np.ascontiguousarray(pixels.transpose(1, 2, 0))
-
-
-def render_fresh(kind: str, n: int, *, start: int = 0, size: int = SIZE, seed: int = 0) -> list[np.ndarray]:
-    """n known-good images of `kind` that no training or holdout set of `render_scenario(seed=seed)` holds."""
-    return [camera(render(kind, None, image_rng(seed, kind, FRESH_SPLIT, 0, start + i), size).image) for i in range(n)]
-
-
-def brighter(image: np.ndarray, gain: float = GAIN) -> np.ndarray:
-    return image * gain
-
-
-def blurred(image: np.ndarray, sigma: float = BLUR_SIGMA) -> np.ndarray:
-    return ndimage.gaussian_filter(image, (0, sigma, sigma), mode="nearest")
-
-
-def shifted(image: np.ndarray, px: int = SHIFT_PX) -> np.ndarray:
-    """The scene moved px right and down; the uncovered edge repeats the edge pixels."""
-    h, w = image.shape[-2:]
-    return np.pad(image, ((0, 0), (px, 0), (px, 0)), mode="edge")[:, :h, :w]
-
-
-TRANSFORMS = {"brightness": brighter, "blur": blurred, "shift": shifted}
-
-
-def changed(images: list[np.ndarray], how: str) -> list[np.ndarray]:
-    """The images with one change applied, each through a camera file again."""
-    return [camera(to_pixels(TRANSFORMS[how](im))) for im in images]
 
 
 # ---------------------------------------------------------------------------------------------------- features

@@ -9,7 +9,7 @@ from knowngood.demo_parts.render import render
 from knowngood.demo_parts.scenario import image_rng
 from knowngood.training import bundle
 
-from tests.bench import drift
+from tests.bench import drift, drift_images
 
 MONITOR = dict(window=200, min_images=20, sigmas=3.0)  # the service's defaults
 # feature dimension of the hand-made sets (the monitor whitens them to a quarter of the holdout, 10 components);
@@ -77,20 +77,20 @@ def test_delay_says_when_the_state_was_already_drifting_at_the_change():
 def test_changes_do_what_they_say():
     rng = np.random.default_rng(5)
     image = rng.uniform(0.1, 0.8, size=(1, 32, 32)).astype(np.float32)
-    assert np.allclose(drift.brighter(image), image * drift.GAIN)
-    moved = drift.shifted(image, 4)
+    assert np.allclose(drift_images.brighter(image), image * drift_images.GAIN)
+    moved = drift_images.shifted(image, 4)
     assert np.array_equal(moved[:, 4:, 4:], image[:, :-4, :-4])
     assert np.array_equal(moved[:, :4, 4:], np.repeat(image[:, :1, :-4], 4, axis=1))  # the top edge, repeated
-    assert drift.blurred(image).std() < 0.5 * image.std()  # white noise loses most of its spread to sigma 1.5
+    assert drift_images.blurred(image).std() < 0.5 * image.std()  # white noise loses most of its spread to sigma 1.5
 
 
 def test_fresh_images_are_no_scenario_images():
-    fresh = drift.render_fresh("bracket", 2, size=32)
+    fresh = drift_images.render_fresh("bracket", 2, size=32)
     assert fresh[0].shape == (1, 32, 32) and fresh[0].dtype == np.float32
     assert not np.array_equal(fresh[0], fresh[1])
     for split in (0, 1):  # render_scenario's training and holdout-good streams
         scenario = render("bracket", None, image_rng(0, "bracket", split, 0, 0), 32).image
-        assert not np.array_equal(drift.to_pixels(fresh[0]), scenario)
+        assert not np.array_equal(drift_images.to_pixels(fresh[0]), scenario)
 
 
 @pytest.fixture(scope="module")
@@ -107,7 +107,7 @@ def test_bench_features_are_the_services(tiny, tiny_good_images):
 def test_another_material_drifts_and_the_known_good_images_do_not(tiny, tiny_good_images):
     det, frechet = tiny
     good = drift.features(det, tiny_good_images)  # the very images the bundle's reference holds
-    other = drift.features(det, drift.render_fresh("bracket", 24, size=32))  # a stamped plate, not a soft blob
+    other = drift.features(det, drift_images.render_fresh("bracket", 24, size=32))  # a stamped plate, not a soft blob
     reports = drift.assessed(drift.stream_reports(frechet, good, **MONITOR))
     assert [r.status for r in reports] == ["ok"] * 5  # images 20 .. 24
     found = drift.detection_delay(frechet, good, other, **MONITOR)
