@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import torch
 import torch.nn.functional as F
-from knowngood.training.memory import local_average
+from knowngood.training.memory import local_average, patch_features
 from torch import nn
 
 NOISE = 0.2  # generator's noise, as a share of the adapted features' mean per-channel std
@@ -60,7 +60,7 @@ def fit_feature_critic(
     net = FeatureCritic(phi.shape[1])
     if init is not None:
         net.load_state_dict(init)
-    patches = local_average(phi).permute(0, 2, 3, 1).reshape(-1, phi.shape[1])  # (N h w, F)
+    patches = patch_features(phi)  # (N h w, F)
     opt = torch.optim.Adam(
         [{"params": net.adaptor.parameters(), "lr": lr / 2}, {"params": net.critic.parameters(), "lr": lr}]
     )

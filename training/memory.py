@@ -29,6 +29,17 @@ def as_patches(phi: torch.Tensor) -> torch.Tensor:
     return phi.permute(0, 2, 3, 1).reshape(-1, phi.shape[1])
 
 
+def patch_features(phi: torch.Tensor, batch: int = 32) -> torch.Tensor:
+    """(N, C, h, w) pretrained features -> (N * h * w, C) locally averaged patch features, written `batch` images
+    at a time into one tensor: no full-size temporaries (with 2000 training images, each is hundreds of MB)."""
+    n, c, h, w = phi.shape
+    out = torch.empty(n * h * w, c, dtype=phi.dtype)
+    for i in range(0, n, batch):
+        chunk = phi[i : i + batch]
+        out[i * h * w : (i + len(chunk)) * h * w] = as_patches(local_average(chunk))
+    return out
+
+
 def greedy_coreset(patches: torch.Tensor, m: int, *, seed: int = 0) -> torch.Tensor:
     """(N, C) -> the indices (m,) of a greedy k-center coreset: each next entry is the patch farthest from every
     entry chosen so far. Distances are taken in a random projection (cheaper; they are preserved up to a small

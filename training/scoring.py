@@ -14,7 +14,7 @@ import torch
 import torch.nn.functional as F
 from knowngood.training.config import ModelConfig
 from knowngood.training.feature_critic import FeatureCritic
-from knowngood.training.memory import as_patches, build_memory, local_average, nearest_distance
+from knowngood.training.memory import build_memory, local_average, nearest_distance, patch_features
 from knowngood.training.nets import Critic, Encoder, Generator
 from knowngood.training.perceptual import PerceptualNet
 from torch import nn
@@ -208,7 +208,7 @@ class ScoringGraph(nn.Module):
             self.feature_mean.copy_(feats.mean(0))
             self.feature_std.copy_(_shrunk_std(feats))
         if "memory" in self.terms:
-            patches = torch.cat([as_patches(local_average(feats[i : i + batch])) for i in range(0, len(feats), batch)])
+            patches = patch_features(feats, batch)
             memory = build_memory(patches, self.cfg.memory_size, seed=seed)
             if len(memory) < self.cfg.memory_size:  # fewer patches than places: repeat, the minimum is the same
                 memory = memory[torch.arange(self.cfg.memory_size) % len(memory)]

@@ -6,7 +6,6 @@ from __future__ import annotations
 import argparse
 import importlib
 import json
-import os
 import subprocess
 import sys
 import tempfile
@@ -39,31 +38,48 @@ def _write_pngs(images: list[np.ndarray], folder: Path) -> None:
         Image.fromarray(arr).save(folder / f"{i:05d}.png")
 
 
+# The child reads its own peak at exit: VmHWM, the high-water RSS of its own address space. A child's rusage
+# (wait4's ru_maxrss) is no good here: Linux carries the parent's high-water RSS into the child at exec, so a
+# bench process holding gigabytes of datasets reported them as the training's peak (6.3 GB in the bench of
+# 2026-12-03, where the training itself peaked at 3.6 GB; `test_bench_levers.py` pins the difference).
+PEAK_AT_EXIT = """
+import atexit, runpy, sys
+out = sys.argv.pop(1)
+
+def peak():
+    with open("/proc/self/status") as f:
+        kib = next(line.split()[1] for line in f if line.startswith("VmHWM"))
+    with open(out, "w") as f:
+        f.write(kib)
+
+atexit.register(peak)
+sys.argv[0] = "knowngood"
+runpy.run_module(sys.argv.pop(1), run_name="__main__", alter_sys=True)
+"""
+
+
+def own_peak_rss_mib(module_args: list[str], *, stderr, scratch: Path) -> tuple[int, float]:
+    """Runs `python -m MODULE ARGS...` (module_args[0] is the module) in a child process; its exit code and its
+    own peak RSS in MiB, read by the child itself at exit (PEAK_AT_EXIT)."""
+    peak_file = scratch / "peak_kib.txt"
+    proc = subprocess.run(
+        [sys.executable, "-c", PEAK_AT_EXIT, str(peak_file), *module_args], stdout=subprocess.DEVNULL, stderr=stderr
+    )
+    kib = int(peak_file.read_text()) if peak_file.exists() else 0
+    return proc.returncode, kib / 1024
+
+
 def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
     """Runs `knowngood train` on `images` (written as PNGs at their own resolution) for `steps` steps in a child
-    process and reads the child's peak RSS. `os.wait4` gives that one child's rusage (ru_maxrss, KiB on Linux);
-    `getrusage(RUSAGE_CHILDREN)` would give the largest of every child this process ever waited for."""
+    process, and its own peak RSS (`own_peak_rss_mib`)."""
     with tempfile.TemporaryDirectory(prefix="kg-bench-mem-") as tmp:
         good = Path(tmp) / "good"
         _write_pngs(images, good)
-        cmd = [
-            sys.executable,
-            "-m",
-            "knowngood.training.cli",
-            "train",
-            str(good),
-            "-o",
-            str(Path(tmp) / "m.kgm"),
-            "--steps",
-            str(steps),
-            "--quiet",
-            "--fresh",
-        ]
+        args = ["knowngood.training.cli", "train", str(good), "-o", str(Path(tmp) / "m.kgm")]
+        args += ["--steps", str(steps), "--quiet", "--fresh"]
         start = time.monotonic()
         with open(Path(tmp) / "stderr.txt", "w+b") as err_file:  # a file, not a pipe: a chatty child cannot block
-            proc = subprocess.Popen(cmd, stdout=subprocess.DEVNULL, stderr=err_file)
-            _, status, usage = os.wait4(proc.pid, 0)
-            proc.returncode = os.waitstatus_to_exitcode(status)
+            code, peak = own_peak_rss_mib(args, stderr=err_file, scratch=Path(tmp))
             err_file.seek(0)
             err = err_file.read().decode(errors="replace")[-2000:]
     out = {
@@ -72,10 +88,11 @@ def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
         "image_shape": list(images[0].shape),
         "steps": steps,
         "seconds": round(time.monotonic() - start, 1),
-        "exit_code": proc.returncode,
-        "peak_rss_mib": round(usage.ru_maxrss / 1024, 1),
+        "exit_code": code,
+        "peak_rss_mib": round(peak, 1),
+        "measured_as": "VmHWM of the training process itself, read at its exit",
     }
-    if proc.returncode:
+    if code:
         out["stderr_tail"] = err
     return out
 

@@ -7,7 +7,7 @@ import numpy as np
 import torch
 from knowngood.training.metrics import image_auroc
 
-from tests.bench.memory import cycled
+from tests.bench.memory import cycled, own_peak_rss_mib
 from tests.bench.peers import PatchMemoryPeer
 
 
@@ -39,3 +39,16 @@ def test_every_lever_of_the_peer_still_finds_a_plain_defect():
         scores, maps = PatchMemoryPeer(memory_size=256, **kw).fit(train).score(test)
         assert maps.shape == (4, 64, 64)
         assert image_auroc(labels, scores) == 1.0, kw
+
+
+def test_the_training_memory_figure_is_the_childs_own_peak_not_the_parents(tmp_path, monkeypatch):
+    """A child's wait4 ru_maxrss carries the parent's high-water RSS over at exec (Linux); the bench's figure must
+    be the child's own: here a child touching 128 MiB while this process holds 512 MiB."""
+    (tmp_path / "touch_128_mib.py").write_text("import numpy as np\na = np.ones(128 * 2**20 // 8)\na += 1\n")
+    monkeypatch.setenv("PYTHONPATH", str(tmp_path))
+    held = np.ones(512 * 2**20 // 8)
+    held += 1  # touched: resident in this process
+    code, peak = own_peak_rss_mib(["touch_128_mib"], stderr=None, scratch=tmp_path)
+    assert code == 0
+    assert 128 <= peak < 400, peak  # its own 128 MiB and the interpreter, never this process's 512 MiB
+    assert held[0] == 2.0

@@ -11,7 +11,14 @@ import itertools
 
 import numpy as np
 import torch
-from knowngood.training.memory import build_memory, greedy_coreset, local_average, nearest_distance
+from knowngood.training.memory import (
+    as_patches,
+    build_memory,
+    greedy_coreset,
+    local_average,
+    nearest_distance,
+    patch_features,
+)
 from scipy.spatial.distance import cdist
 
 
@@ -77,3 +84,11 @@ def test_local_average_is_a_three_by_three_mean():
     out = local_average(phi)
     assert out[0, 0, 2, 2] == phi[0, 0, 1:4, 1:4].mean()
     assert out[0, 0, 0, 0] == phi[0, 0, :2, :2].mean()  # the border averages what exists
+
+
+def test_patch_features_in_batches_equal_the_whole_at_once():
+    """The batched writer behind the memory and the feature critic gives exactly the all-at-once patches."""
+    phi = torch.randn(7, 5, 6, 4, generator=torch.Generator().manual_seed(3))
+    whole = as_patches(local_average(phi))
+    assert torch.equal(patch_features(phi, batch=3), whole)
+    assert torch.equal(patch_features(phi, batch=32), whole)
