@@ -1,12 +1,15 @@
-"""Bench helpers that the README's figures rest on: the images the training-memory figure is taken on
-(`tests/bench/memory.py`), and the patch-memory peer's levers (`tests/bench/memory_levers.py`)."""
+"""Bench helpers that the README's figures rest on: the images and the measurement of the training-memory figure
+(`tests/bench/memory.py`), the patch-memory peer's levers (`tests/bench/memory_levers.py`) and the rules that
+combine the terms (`tests/bench/combination_levers.py`)."""
 
 from __future__ import annotations
 
 import numpy as np
 import torch
 from knowngood.training.metrics import image_auroc
+from knowngood.training.scoring import TERMS
 
+from tests.bench.combination_levers import image_scores
 from tests.bench.memory import cycled, own_peak_rss_mib
 from tests.bench.peers import PatchMemoryPeer
 
@@ -52,3 +55,18 @@ def test_the_training_memory_figure_is_the_childs_own_peak_not_the_parents(tmp_p
     assert code == 0
     assert 128 <= peak < 400, peak  # its own 128 MiB and the interpreter, never this process's 512 MiB
     assert held[0] == 2.0
+
+
+def test_the_combination_rules_of_the_terms():
+    """combination_levers' two rules on standardised maps: one term gives the same score under both; with two,
+    the maximum's score is never below the mean's, and equals the larger term's where that one dominates."""
+    z = torch.zeros(3, len(TERMS), 8, 8)
+    z[:, TERMS.index("memory")] = torch.arange(3.0).view(3, 1, 1)  # image i: memory z = i everywhere
+    z[:, TERMS.index("critic"), :2, :2] = 10.0  # a small hot spot of the critic residual in every image
+    one = ("memory",)
+    assert torch.equal(image_scores(z, one, "max", 4), image_scores(z, one, "mean", 4))
+    two = ("memory", "critic")
+    top_max, top_mean = image_scores(z, two, "max", 4), image_scores(z, two, "mean", 4)
+    assert torch.allclose(top_max, torch.full((3,), 10.0))  # the top 4 pixels are the critic's 2 x 2 spot
+    assert torch.allclose(top_mean, (10.0 + torch.arange(3.0)) / 2)
+    assert bool((top_max >= top_mean).all())

@@ -1,0 +1,87 @@
+"""A lever on how the terms combine, measured on bundles `make bench` trained: the heatmap is now the maximum of
+the standardised term maps (each pixel takes its strongest evidence), so a second term can only add where it is
+the strongest; the mean of the same maps lets terms that each see part of a defect add up, and lets one term's
+noise be damped by the others.
+
+    python -m tests.bench.combination_levers [--bundles bench_out/bundles] [--out ...] NAME ...
+
+Per dataset: the bench's knowngood bundle of that set (`<bundles>/<NAME>.kgm`), every term computed on its trained
+nets as the ablation computes them (`ablation.all_terms_graph`), and the image AUROC (scikit-learn) of each set of
+terms under both rules, image score = mean of the top 0.3 % of the heatmap as in the model. These are the
+benchmark's own test splits: the figures are design evidence for the README's table of levers, not independent
+test figures, and a rule adopted from them must be chosen per model on synthetic defects (`selection.py`).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+import torch
+from knowngood.training import bundle
+from knowngood.training.detector import Detector
+from knowngood.training.scoring import TERMS
+from sklearn.metrics import roc_auc_score
+
+from tests.bench import ablation, datasets
+
+SETS = (
+    ("memory",),
+    ("memory", "adversarial"),
+    ("memory", "perceptual"),
+    ("memory", "critic"),
+    ("memory", "pixel"),
+    ("memory", "adversarial", "perceptual"),
+    ("memory", "adversarial", "critic", "pixel"),
+    TERMS,
+)
+
+
+@torch.no_grad()
+def standardised_maps(det: Detector, ds: datasets.Dataset) -> tuple[torch.Tensor, int]:
+    """(N, T, H, W) standardised term maps of the test images on the bundle's nets, and the model's top-k."""
+    graph = ablation.all_terms_graph(det, ds.train)
+    det_all = Detector(cfg=graph.cfg, graph=graph, threshold=float("inf"))
+    x = det_all.prepare(ds.test)
+    parts = [graph.term_maps(x[i : i + 16]) for i in range(0, len(x), 16)]
+    z = (torch.cat(parts) - graph.term_mean) / graph.term_std
+    return z, graph.top_k
+
+
+def image_scores(z: torch.Tensor, terms: tuple[str, ...], rule: str, top_k: int) -> torch.Tensor:
+    picked = z[:, [TERMS.index(t) for t in terms]]
+    heat = (picked.amax(1) if rule == "max" else picked.mean(1)).clamp(min=0)
+    return heat.flatten(1).topk(top_k, dim=1).values.mean(1)
+
+
+def measure(name: str, bundles: Path, cache: Path) -> dict:
+    ds = datasets.load(name, cache)
+    det, _ = bundle.load(bundles / f"{name}.kgm")
+    z, top_k = standardised_maps(det, ds)
+    out = {}
+    for terms in SETS:
+        row = {rule: image_scores(z, terms, rule, top_k).double().numpy() for rule in ("max", "mean")}
+        out[" + ".join(terms)] = {rule: round(float(roc_auc_score(ds.labels, s)), 4) for rule, s in row.items()}
+    return out
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("names", nargs="+", choices=datasets.NAMES[:-1])  # 128 px sets (the large one is tiled)
+    ap.add_argument("--bundles", type=Path, default=Path("bench_out/bundles"))
+    ap.add_argument("--out", type=Path, default=Path("bench_out/combination_levers.json"))
+    ap.add_argument("--cache", type=Path, default=Path("bench_out/cache"))
+    args = ap.parse_args(argv)
+    torch.set_num_threads(2)
+    result = {}
+    for name in args.names:
+        result[name] = measure(name, args.bundles, args.cache)
+        print(name, json.dumps(result[name]), flush=True)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    args.out.write_text(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
