@@ -14,8 +14,6 @@ test figures, and a rule adopted from them must be chosen per model on synthetic
 
 from __future__ import annotations
 
-import argparse
-import json
 from pathlib import Path
 
 import torch
@@ -25,6 +23,7 @@ from knowngood.training.scoring import TERMS
 from sklearn.metrics import roc_auc_score
 
 from tests.bench import ablation, datasets
+from tests.bench.levers import lever_main
 
 SETS = (
     ("memory",),
@@ -67,20 +66,14 @@ def measure(name: str, bundles: Path, cache: Path) -> dict:
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("names", nargs="+", choices=datasets.NAMES[:-1])  # 128 px sets (the large one is tiled)
-    ap.add_argument("--bundles", type=Path, default=Path("bench_out/bundles"))
-    ap.add_argument("--out", type=Path, default=Path("bench_out/combination_levers.json"))
-    ap.add_argument("--cache", type=Path, default=Path("bench_out/cache"))
-    args = ap.parse_args(argv)
-    torch.set_num_threads(2)
-    result = {}
-    for name in args.names:
-        result[name] = measure(name, args.bundles, args.cache)
-        print(name, json.dumps(result[name]), flush=True)
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(result, indent=2))
-    return 0
+    return lever_main(
+        argv,
+        description=__doc__.splitlines()[0],
+        out="bench_out/combination_levers.json",
+        threads=2,
+        measure=lambda name, args: measure(name, args.bundles, args.cache),
+        extra=lambda ap: ap.add_argument("--bundles", type=Path, default=Path("bench_out/bundles")),
+    )
 
 
 if __name__ == "__main__":

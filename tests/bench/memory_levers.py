@@ -12,18 +12,15 @@ independent test figures.
 
 from __future__ import annotations
 
-import argparse
-import json
 import time
-from pathlib import Path
 
 import numpy as np
-import torch
 from knowngood.training.config import ModelConfig
 from knowngood.training.data import to_model_input
 from sklearn.metrics import roc_auc_score
 
 from tests.bench import datasets
+from tests.bench.levers import lever_main
 from tests.bench.peers import PatchMemoryPeer
 
 SIZE = 128  # the benchmark's working size
@@ -56,19 +53,13 @@ def measure(ds: datasets.Dataset) -> dict:
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("names", nargs="+", choices=datasets.NAMES[:-1])  # 128 px sets (the large one is tiled)
-    ap.add_argument("--out", type=Path, default=Path("bench_out/memory_levers.json"))
-    ap.add_argument("--cache", type=Path, default=Path("bench_out/cache"))
-    args = ap.parse_args(argv)
-    torch.set_num_threads(1)
-    result = {}
-    for name in args.names:
-        result[name] = measure(datasets.load(name, args.cache))
-        print(name, json.dumps(result[name]), flush=True)
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    args.out.write_text(json.dumps(result, indent=2))
-    return 0
+    return lever_main(
+        argv,
+        description=__doc__.splitlines()[0],
+        out="bench_out/memory_levers.json",
+        threads=1,
+        measure=lambda name, args: measure(datasets.load(name, args.cache)),
+    )
 
 
 if __name__ == "__main__":
