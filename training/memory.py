@@ -33,7 +33,7 @@ def patch_features(phi: torch.Tensor, batch: int = 32) -> torch.Tensor:
     """(N, C, h, w) pretrained features -> (N * h * w, C) locally averaged patch features, written `batch` images
     at a time into one tensor: no full-size temporaries (with 2000 training images, each is hundreds of MB)."""
     n, c, h, w = phi.shape
-    out = torch.empty(n * h * w, c, dtype=phi.dtype)
+    out = torch.empty(n * h * w, c, dtype=phi.dtype, device=phi.device)
     for i in range(0, n, batch):
         chunk = phi[i : i + batch]
         out[i * h * w : (i + len(chunk)) * h * w] = as_patches(local_average(chunk))
