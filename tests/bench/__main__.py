@@ -280,8 +280,8 @@ def print_sections(result: dict) -> None:
         print(f"\n## Inspection speed of the {sp['bundle_of']} bundle ({' x '.join(map(str, sp['image_size']))} px)\n")
         print(speed.markdown(sp))
     mem = result.get("memory", {})
-    if "training" in mem:
-        print(f"\nTraining peak RSS: {mem['training']['peak_rss_mib']:.0f} MiB")
+    if (peak := mem.get("training", {}).get("peak_rss_mib")) is not None:
+        print(f"\nTraining peak RSS: {peak:.0f} MiB")
     if "service" in mem:
         print(f"Service memory: {mem['service']}")
     heavy = result.get("service", {}).get("heavy_image_rss", {})

@@ -40,8 +40,8 @@ def _write_pngs(images: list[np.ndarray], folder: Path) -> None:
 
 # The child reads its own peak at exit: VmHWM, the high-water RSS of its own address space. A child's rusage
 # (wait4's ru_maxrss) is no good here: Linux carries the parent's high-water RSS into the child at exec, so a
-# bench process holding gigabytes of datasets reported them as the training's peak (6.3 GB in the bench of
-# 2026-12-03, where the training itself peaked at 3.6 GB; `test_bench_levers.py` pins the difference).
+# bench process holding gigabytes of datasets reported them as the training's peak (6326 MiB in the bench of
+# 2026-12-03, where the training itself peaked at 3705 MiB; `test_bench_levers.py` pins the difference).
 PEAK_AT_EXIT = """
 import atexit, runpy, sys
 out = sys.argv.pop(1)
@@ -58,15 +58,14 @@ runpy.run_module(sys.argv.pop(1), run_name="__main__", alter_sys=True)
 """
 
 
-def own_peak_rss_mib(module_args: list[str], *, stderr, scratch: Path) -> tuple[int, float]:
+def own_peak_rss_mib(module_args: list[str], *, stderr, scratch: Path) -> tuple[int, float | None]:
     """Runs `python -m MODULE ARGS...` (module_args[0] is the module) in a child process; its exit code and its
-    own peak RSS in MiB, read by the child itself at exit (PEAK_AT_EXIT)."""
+    own peak RSS in MiB, read by the child itself at exit (PEAK_AT_EXIT); None when it died before it could."""
     peak_file = scratch / "peak_kib.txt"
     proc = subprocess.run(
         [sys.executable, "-c", PEAK_AT_EXIT, str(peak_file), *module_args], stdout=subprocess.DEVNULL, stderr=stderr
     )
-    kib = int(peak_file.read_text()) if peak_file.exists() else 0
-    return proc.returncode, kib / 1024
+    return proc.returncode, int(peak_file.read_text()) / 1024 if peak_file.exists() else None
 
 
 def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
@@ -89,7 +88,7 @@ def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
         "steps": steps,
         "seconds": round(time.monotonic() - start, 1),
         "exit_code": code,
-        "peak_rss_mib": round(peak, 1),
+        "peak_rss_mib": None if peak is None else round(peak, 1),
         "measured_as": "VmHWM of the training process itself, read at its exit",
     }
     if code:
