@@ -8,6 +8,7 @@ from dataclasses import dataclass, fields
 from knowngood.training.errors import BadConfig
 
 TERM_FIELDS = ("pixel", "kappa", "perceptual", "memory", "adversarial")  # the terms' weights in ModelConfig
+COMBINE_RULES = ("max", "mean")  # how the terms' maps make one heatmap (scoring.ScoringGraph.heat_from)
 
 
 @dataclass(frozen=True)
@@ -26,6 +27,7 @@ class ModelConfig:
     perceptual: float = 1.0  # weight of the per-position pretrained-feature term (0 = left out); see perceptual.py
     memory: float = 1.0  # weight of the position-free term: distance to the nearest known-good patch (memory.py)
     adversarial: float = 1.0  # weight of the feature-space adversarial term (feature_critic.py)
+    combine: str = "max"  # heatmap = the weighted standardised terms' "max" (strongest evidence) or "mean"
     memory_size: int = 4096  # patches kept in the memory by greedy coreset selection (fewer when fewer exist)
     residual_shift: int = 1  # px the reconstruction may be off and still explain a pixel (see scoring.py)
     perceptual_shift: int = 1  # positions (of 4 px) a feature may move and still match known-good (fixture jitter)
@@ -45,6 +47,8 @@ class ModelConfig:
         for name in TERM_FIELDS:
             if not 0 <= getattr(self, name) <= 100:
                 raise BadConfig(f"{name} must be from 0 to 100, got {getattr(self, name)}")
+        if self.combine not in COMBINE_RULES:
+            raise BadConfig(f"combine must be one of {', '.join(COMBINE_RULES)}, got {self.combine!r}")
         if not any(getattr(self, name) > 0 for name in TERM_FIELDS):
             raise BadConfig(f"at least one term ({', '.join(TERM_FIELDS)}) needs a positive weight")
         if self.height and (self.height % 16 or not 32 <= self.height <= 1024):

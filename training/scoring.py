@@ -67,7 +67,7 @@ TERMS = ("pixel", "critic", "perceptual", "memory", "adversarial")  # the order 
 
 
 def term_weights(cfg: ModelConfig) -> dict[str, float]:
-    """{term: weight in the heatmap's maximum} for the terms the model computes (weight > 0)."""
+    """{term: weight in the heatmap (`combine`)} for the terms the model computes (weight > 0)."""
     weights = {
         "pixel": cfg.pixel,
         "critic": cfg.kappa,
@@ -87,8 +87,10 @@ class ScoringGraph(nn.Module):
     features of x lie from those of known-good images at the same place), the position-free term (how far
     each patch's features lie from the nearest known-good patch anywhere: `memory.py`) and the feature-space
     adversarial term (a critic on the pretrained features: `feature_critic.py`). Each is standardised
-    per pixel; the heatmap is their weighted maximum, because the terms see different defects and a sum
-    dilutes whichever one alone sees the defect (measured: README, "The method").
+    per pixel; the heatmap is their weighted maximum (`combine` "max": the terms see different defects and a
+    sum dilutes whichever one alone sees the defect) or their weighted mean ("mean": terms that each see a
+    defect weakly add up, and one term's noise is damped), as chosen per model (`selection.py`; measured:
+    README, "The method").
     """
 
     def __init__(
@@ -176,8 +178,11 @@ class ScoringGraph(nn.Module):
 
     def heat_from(self, maps: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Raw term maps (B, T, H, W) -> (score (B,), heatmap (B, H, W)); higher = less like known-good."""
-        z = (maps - self.term_mean) / self.term_std  # (B, T, H, W)
-        heat = (z * self.weights).amax(1).clamp(min=0)  # (B, H, W): the strongest evidence at each pixel
+        z = (maps - self.term_mean) / self.term_std * self.weights  # (B, T, H, W)
+        if self.cfg.combine == "mean":  # terms that each see part of a defect add up; one term's noise is damped
+            heat = (z.sum(1) / self.weights.sum()).clamp(min=0)
+        else:  # the strongest evidence at each pixel: a defect only one term sees is not diluted
+            heat = z.amax(1).clamp(min=0)  # (B, H, W)
         score = heat.flatten(1).topk(self.top_k, dim=1).values.mean(1)  # (B,)
         return score, heat
 

@@ -5,9 +5,10 @@ Every candidate term is computed once on the held-out known-good images and on t
 standardised as the final model will standardise it; every combination of weights is then scored by how well it
 separates the two (image AUROC, scikit-learn) plus a quarter of how well its heatmap finds the pasted masks
 (pixel AUROC on a fixed sample of pixels), which keeps ordering combinations when several separate the images
-perfectly. The combinations: every set of terms at weight 1 (one residual shift at most), then the best set with
-each of its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into
-the bundle.
+perfectly. The combinations: every set of terms at weight 1 (one residual shift at most), each set of two or
+more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then the best set with each of
+its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into the
+bundle.
 """
 
 from __future__ import annotations
@@ -17,7 +18,7 @@ import itertools
 
 import numpy as np
 import torch
-from knowngood.training.config import TERM_FIELDS, ModelConfig
+from knowngood.training.config import COMBINE_RULES, TERM_FIELDS, ModelConfig
 from knowngood.training.scoring import ScoringGraph
 from knowngood.training.synthetic import paste_defects
 from sklearn.metrics import roc_auc_score
@@ -25,7 +26,7 @@ from sklearn.metrics import roc_auc_score
 PIXEL_WEIGHT = 0.25  # share of the pixel AUROC in the criterion
 PIXEL_SAMPLE = 20000
 TOLERANCE = 0.005  # criterion differences below this count as ties (see _ranked)
-SYNTHETIC_COPIES = 3  # defective copies of each held-out image, one of each kind
+SYNTHETIC_COPIES = 5  # defective copies of each held-out image, one of each kind (synthetic.KINDS)
 # candidate name -> the settings it stands for; the two residual shifts are alternatives of one term
 OTHERS = {
     "critic": "kappa",
@@ -65,7 +66,8 @@ class Choice:
 
 def term_summary(evidence: dict) -> str:
     """One line for `train`'s output and the report: what was chosen and why (the bundle's score.choice)."""
-    terms = ", ".join(f"{name} {w:g}" for name, w in evidence["chosen"].items() if w > 0)
+    chosen = [f"{name} {w:g}" for name, w in evidence["chosen"].items() if w > 0]
+    terms = ", ".join(chosen) + (f" ({evidence.get('combine', 'max')} of their maps)" if len(chosen) > 1 else "")
     alone = max(evidence["alone"], key=lambda k: evidence["alone"][k]["image_auroc"])
     return (
         f"terms {terms}: synthetic-defect image AUROC {evidence['image_auroc']:.3f}, pixel AUROC "
@@ -107,34 +109,46 @@ def _z_maps(graph: ScoringGraph, x: torch.Tensor, batch: int = 8) -> torch.Tenso
 
 
 def _image_scores(
-    z: dict[str, torch.Tensor], weights: dict[str, float], top_k: int
+    z: dict[str, torch.Tensor], weights: dict[str, float], top_k: int, rule: str = "max"
 ) -> tuple[torch.Tensor, torch.Tensor]:
-    """The heatmaps (N, H, W) and image scores of one combination: the weighted maps' maximum, taken one term at a
-    time (not stacked first: with 2000 training images the stack set the training's peak memory)."""
+    """The heatmaps (N, H, W) and image scores of one combination: the weighted maps' maximum or mean (`rule`,
+    as `ScoringGraph.heat_from`), taken one term at a time (not stacked first: with 2000 training images the stack
+    set the training's peak memory)."""
     heat = None
     for n, w in weights.items():
         if w > 0:
-            heat = z[n] * w if heat is None else torch.maximum(heat, z[n] * w, out=heat)
+            term = z[n] * w  # a new tensor: the in-place updates below never touch z
+            if heat is None:
+                heat = term
+            elif rule == "mean":
+                heat.add_(term)
+            else:
+                torch.maximum(heat, term, out=heat)
+    if rule == "mean":
+        heat.div_(sum(w for w in weights.values() if w > 0))
     heat = heat.clamp_(min=0)
     return heat, heat.flatten(1).topk(top_k, dim=1).values.mean(1)
 
 
 def _subsets(names: list[str]):
-    """Every non-empty set of terms at weight 1, with at most one residual shift of the image residual."""
+    """(rule, weights): every non-empty set of terms at weight 1, with at most one residual shift of the image
+    residual; a single term under the maximum only (both rules give the same map), two or more under each rule."""
     pixel = [n for n in names if n.startswith("pixel@")]
     others = [n for n in names if not n.startswith("pixel@")]
     for pix in [[]] + [[p] for p in pixel]:
         for k in range(len(others) + 1):
             for chosen in itertools.combinations(others, k):
-                if pix or chosen:
-                    yield dict.fromkeys([*pix, *chosen], 1.0)
+                terms = [*pix, *chosen]
+                rules = COMBINE_RULES if len(terms) > 1 else COMBINE_RULES[:1]
+                for rule in rules if terms else ():
+                    yield rule, dict.fromkeys(terms, 1.0)
 
 
-def _halved(best: dict[str, float]):
-    """The best set with one of its terms at half weight (when it has more than one)."""
+def _halved(rule: str, best: dict[str, float]):
+    """The best set with one of its terms at half weight (when it has more than one), under the same rule."""
     if len(best) > 1:
         for name in best:
-            yield {**best, name: 0.5}
+            yield rule, {**best, name: 0.5}
 
 
 def _ranked(results: list[tuple[dict, dict]]) -> list[tuple[dict, dict]]:
@@ -145,7 +159,7 @@ def _ranked(results: list[tuple[dict, dict]]) -> list[tuple[dict, dict]]:
 
     def key(r):
         near = r[1]["criterion"] >= top - TOLERANCE
-        return (not near, len(r[0]) if near else 0, -r[1]["criterion"])
+        return (not near, len(r[0][1]) if near else 0, -r[1]["criterion"])
 
     return sorted(results, key=key)
 
@@ -183,18 +197,18 @@ def choose_terms(
     )
     top_k = graphs[next(iter(graphs))].top_k
 
-    def evaluate(weights: dict[str, float]) -> dict:
-        heat, scores = _image_scores(z, weights, top_k)
+    def evaluate(combo: tuple[str, dict[str, float]]) -> dict:
+        heat, scores = _image_scores(z, combo[1], top_k, rule=combo[0])
         img = float(roc_auc_score(labels, scores.numpy()))
         pix = float(roc_auc_score(pix_labels[sample].numpy(), heat.flatten()[sample].numpy()))
         return {"image_auroc": round(img, 4), "pixel_auroc": round(pix, 4), "criterion": img + PIXEL_WEIGHT * pix}
 
-    alone = {n: evaluate({n: 1.0}) for n in graphs}
+    alone = {n: evaluate(("max", {n: 1.0})) for n in graphs}
 
     results = _ranked([(combo, evaluate(combo)) for combo in _subsets(list(graphs))])
-    results = _ranked(results + [(combo, evaluate(combo)) for combo in _halved(results[0][0])])
-    best, best_eval = results[0]
-    settings = {}
+    results = _ranked(results + [(combo, evaluate(combo)) for combo in _halved(*results[0][0])])
+    (rule, best), best_eval = results[0]
+    settings = {"combine": rule}
     for name, w in best.items():
         if w > 0:
             settings.update(candidates(shifts)[name], **{_field(name): w})
@@ -204,16 +218,18 @@ def choose_terms(
         "criterion": f"image AUROC + {PIXEL_WEIGHT} x pixel AUROC",
         "images": {"good": len(good_x), "synthetic": len(bad_x)},
         "chosen": {n: float(best.get(n, 0.0)) for n in graphs},
+        "combine": rule,
         "image_auroc": best_eval["image_auroc"],
         "pixel_auroc": best_eval["pixel_auroc"],
         "alone": {n: {k: v for k, v in e.items() if k != "criterion"} for n, e in alone.items()},
         "runners_up": [
             {
                 "weights": {n: w for n, w in combo.items() if w > 0},
+                "combine": combo_rule,
                 "image_auroc": e["image_auroc"],
                 "pixel_auroc": e["pixel_auroc"],
             }
-            for combo, e in results[1:6]
+            for (combo_rule, combo), e in results[1:6]
         ],
     }
     return Choice(cfg=cfg, evidence=evidence, graphs=graphs)

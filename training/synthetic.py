@@ -1,10 +1,13 @@
 """Synthetic defects pasted into held-out known-good images, to choose a model's terms without any real defect.
 
-Three published kinds, each with its pixel mask:
+Five kinds of mask, each filled with another image's content, a brightness change or a noise texture, blended at
+a random opacity:
 - CutPaste (Li et al., CVPR 2021): a rectangle cut from another known-good image, optionally flipped and with its
   brightness changed, pasted at a random place; and its "scar" variant, a thin rotated strip;
-- Perlin-noise masks (Zavrtanik et al., DRAEM, ICCV 2021): a blob of thresholded Perlin noise, filled with
-  another image's content, a brightness change or a noise texture, blended at a random opacity.
+- Perlin-noise masks (Zavrtanik et al., DRAEM, ICCV 2021): a blob of thresholded Perlin noise;
+- two of our own, for the commonest defects the three above leave out (common practice: cracks and large
+  discoloured or inactive areas are everyday defects of cast, sintered and laminated parts and of solar cells): a
+  crack, a thin line whose direction wanders, and a large Perlin area of 15-35 % of the side.
 Strengths run from faint to obvious, so the choice is made on defects near the limit of what a model sees, not
 only on ones every term catches (model selection on synthetic anomalies: Fung et al. 2023).
 """
@@ -46,15 +49,42 @@ def _ellipse(shape: tuple[int, int], rng: np.random.Generator, radius: tuple[flo
     return ((yy - cy) / ry) ** 2 + ((xx - cx) / rx) ** 2 <= 1
 
 
-def perlin_mask(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
+def perlin_mask(
+    shape: tuple[int, int], rng: np.random.Generator, radius: tuple[float, float] = (0.04, 0.15)
+) -> np.ndarray:
     """A local blob: thresholded Perlin noise inside a random ellipse (so a defect is local, not all over)."""
     for _ in range(10):
         cells = tuple(int(2 ** rng.integers(1, 5)) for _ in range(2))
         noise = perlin(shape, cells, rng)
-        mask = (noise > rng.uniform(0.1, 0.4)) & _ellipse(shape, rng, (0.04, 0.15))
+        mask = (noise > rng.uniform(0.1, 0.4)) & _ellipse(shape, rng, radius)
         if mask.sum() >= 4:
             return mask
     return _ellipse(shape, rng, (0.03, 0.06))
+
+
+def _patch(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
+    """A large area (a stain, an inactive or discoloured region): a Perlin blob of 15-35 % of the side."""
+    return perlin_mask(shape, rng, (0.15, 0.35))
+
+
+def _crack(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
+    """A crack: a thin wandering line, 1-2 px wide, 10-40 % of the side long, its direction drifting."""
+    h, w = shape
+    side = min(h, w)
+    y, x = rng.uniform(0.15, 0.85) * h, rng.uniform(0.15, 0.85) * w
+    angle = rng.uniform(0, 2 * math.pi)
+    mask = np.zeros(shape, dtype=bool)
+    radius = int(rng.integers(0, 2))  # 0: 1 px wide, 1: 3 px
+    for _ in range(int(rng.uniform(0.1, 0.4) * side)):
+        angle += rng.normal(0, 0.3)
+        y, x = y + math.sin(angle), x + math.cos(angle)
+        iy, ix = int(round(y)), int(round(x))
+        if not (0 <= iy < h and 0 <= ix < w):
+            break
+        mask[max(0, iy - radius) : iy + radius + 1, max(0, ix - radius) : ix + radius + 1] = True
+    if mask.sum() < 4:
+        return _strip(shape, rng)
+    return mask
 
 
 def _strip(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
@@ -98,11 +128,14 @@ def _filling(img: np.ndarray, donor: np.ndarray, rng: np.random.Generator) -> np
     return np.clip(img.mean() + rng.uniform(0.1, 0.35) * texture[None] + rng.normal(0, 0.03, img.shape), 0, 1)
 
 
+KINDS = (_rectangle, _strip, perlin_mask, _crack, _patch)
+
+
 def paste_defects(x: torch.Tensor, *, copies: int = 1, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor]:
     """x (N, C, H, W) known-good images in [0, 1] -> (defective copies (copies * N, C, H, W), masks
     (copies * N, H, W) bool); copy k of image i is at k * N + i.
 
-    Each copy has one defect: a CutPaste rectangle, a CutPaste scar or a Perlin blob, in turn; the content comes
+    Each copy has one defect, of the `KINDS` in turn (copy k of image i: kind (i + k) mod 5); the content comes
     from another image of x (or is a brightness change / noise texture) and is blended at opacity 0.3-1."""
     rng = np.random.default_rng(seed)
     imgs = x.numpy()
@@ -111,7 +144,7 @@ def paste_defects(x: torch.Tensor, *, copies: int = 1, seed: int = 0) -> tuple[t
     masks = np.zeros((copies * n, *x.shape[-2:]), dtype=bool)
     for k in range(copies):
         for i, img in enumerate(imgs):
-            mask = (_rectangle, _strip, perlin_mask)[(i + k) % 3](img.shape[-2:], rng)
+            mask = KINDS[(i + k) % len(KINDS)](img.shape[-2:], rng)
             donor = imgs[(i + 1 + rng.integers(max(1, n - 1))) % n]
             fill = _filling(img, donor, rng)
             m = mask[None].astype(np.float32) * rng.uniform(0.3, 1.0)  # the opacity

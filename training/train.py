@@ -127,9 +127,10 @@ def train_bundle(
 
 
 MAX_TILES = 4000  # tiles per split: enough to cover a part's variation, bounded memory for multi-megapixel sets
-# inputs the choice of terms pastes defects into (x 4 with the copies): more adds little evidence and, for tiled
-# models of megapixel images (thousands of tiles), cost most of a 25-minute training (bench, demo-casting-large)
-MAX_SELECTION = 512
+# inputs the choice of terms pastes defects into (x 6 with the copies): more adds little evidence and, for tiled
+# models of megapixel images (thousands of tiles), cost most of a 25-minute training (bench, demo-casting-large);
+# 400 x 6 maps per term keep the choice's memory where 512 x 4 had it (the training-memory bench)
+MAX_SELECTION = 400
 
 
 def _sample(x, n: int, seed: int):

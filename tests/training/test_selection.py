@@ -12,8 +12,9 @@ import torch
 from knowngood.training.config import ModelConfig
 from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
-from knowngood.training.selection import TOLERANCE, _ranked, choose_terms
-from knowngood.training.synthetic import paste_defects, perlin
+from knowngood.training.selection import SYNTHETIC_COPIES, TOLERANCE, _image_scores, _ranked, _subsets, choose_terms
+from knowngood.training.synthetic import _crack, _patch, paste_defects, perlin, perlin_mask
+from scipy import ndimage
 
 
 def _images(n: int = 12, size: int = 32) -> torch.Tensor:
@@ -45,15 +46,58 @@ def test_pasted_defects_change_only_their_mask_and_are_reproducible():
     assert float(bad.min()) >= 0 and float(bad.max()) <= 1
 
 
+def test_cracks_are_thin_connected_lines_and_large_areas_are_larger_than_blobs():
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        crack = _crack((128, 128), rng)
+        _, parts = ndimage.label(crack, structure=np.ones((3, 3)))  # 8-connected (scipy, a reference library)
+        assert parts == 1 and 4 <= crack.sum() < 0.03 * crack.size
+        eroded = ndimage.binary_erosion(crack, structure=np.ones((5, 5)))
+        assert not eroded.any()  # at most 3 px wide everywhere: a 5 x 5 square never fits inside
+    large = np.mean([_patch((128, 128), rng).mean() for _ in range(30)])
+    blobs = np.mean([perlin_mask((128, 128), rng).mean() for _ in range(30)])
+    assert large > 3 * blobs
+
+
 def test_ranking_prefers_fewer_terms_within_the_tolerance():
     results = [
-        ({"memory": 1.0, "critic": 1.0}, {"criterion": 1.20}),
-        ({"memory": 1.0}, {"criterion": 1.20 - TOLERANCE / 2}),
-        ({"critic": 1.0}, {"criterion": 1.10}),
+        (("max", {"memory": 1.0, "critic": 1.0}), {"criterion": 1.20}),
+        (("max", {"memory": 1.0}), {"criterion": 1.20 - TOLERANCE / 2}),
+        (("max", {"critic": 1.0}), {"criterion": 1.10}),
     ]
-    assert _ranked(results)[0][0] == {"memory": 1.0}
-    clear = [({"memory": 1.0, "critic": 1.0}, {"criterion": 1.25}), ({"memory": 1.0}, {"criterion": 1.20})]
-    assert _ranked(clear)[0][0] == {"memory": 1.0, "critic": 1.0}  # a clear gain earns the second term
+    assert _ranked(results)[0][0] == ("max", {"memory": 1.0})
+    clear = [
+        (("mean", {"memory": 1.0, "critic": 1.0}), {"criterion": 1.25}),
+        (("max", {"memory": 1.0, "critic": 1.0}), {"criterion": 1.22}),
+        (("max", {"memory": 1.0}), {"criterion": 1.20}),
+    ]
+    assert _ranked(clear)[0][0] == ("mean", {"memory": 1.0, "critic": 1.0})  # a clear gain earns the second term
+
+
+def test_every_set_of_two_or_more_terms_is_a_candidate_under_both_rules():
+    combos = list(_subsets(["pixel@0", "pixel@1", "critic", "memory"]))
+    singles = [c for c in combos if len(c[1]) == 1]
+    assert sorted(next(iter(w)) for _, w in singles) == ["critic", "memory", "pixel@0", "pixel@1"]
+    assert {r for r, _ in singles} == {"max"}  # one term: both rules give the same map
+    several = [(r, tuple(sorted(w))) for r, w in combos if len(w) > 1]
+    assert not any("pixel@0" in t and "pixel@1" in t for _, t in several)  # one residual shift at most
+    assert sorted(r for r, t in several if t == ("critic", "memory")) == ["max", "mean"]
+    assert len(several) == 2 * 7  # {critic, memory}, and each shift with one of the 3 non-empty sets of the others
+
+
+def test_the_choice_scores_match_the_scoring_graphs_rule():
+    """`_image_scores` is the selection's restatement of `ScoringGraph.heat_from`; both rules must agree."""
+    torch.manual_seed(0)
+    z = {"memory": torch.randn(4, 16, 16), "critic": torch.randn(4, 16, 16)}
+    before = {n: m.clone() for n, m in z.items()}
+    weights = {"memory": 1.0, "critic": 0.5}
+    for rule in ("max", "mean"):
+        heat, scores = _image_scores(z, weights, top_k=3, rule=rule)
+        stacked = torch.stack([z["memory"], z["critic"] * 0.5], 1)
+        expected = (stacked.amax(1) if rule == "max" else stacked.sum(1) / 1.5).clamp(min=0)
+        assert torch.allclose(heat, expected)
+        assert torch.allclose(scores, expected.flatten(1).topk(3, dim=1).values.mean(1))
+    assert all(torch.equal(z[n], before[n]) for n in z)  # the maps themselves are left untouched
 
 
 def test_choice_is_recorded_and_no_single_term_beats_it():
@@ -65,9 +109,10 @@ def test_choice_is_recorded_and_no_single_term_beats_it():
     )
     ev = choice.evidence
     assert set(ev["alone"]) == {"pixel@0", "pixel@1", "critic", "perceptual", "memory"}  # no feature critic given
-    assert ev["images"] == {"good": 6, "synthetic": 18}
+    assert ev["images"] == {"good": 6, "synthetic": 6 * SYNTHETIC_COPIES}
     chosen = {k for k, w in ev["chosen"].items() if w > 0}
     assert chosen and not {"pixel@0", "pixel@1"} <= chosen  # one residual shift at most
+    assert ev["combine"] == choice.cfg.combine and ev["combine"] in ("max", "mean")
     best_alone = max(a["image_auroc"] + 0.25 * a["pixel_auroc"] for a in ev["alone"].values())
     assert ev["image_auroc"] + 0.25 * ev["pixel_auroc"] >= best_alone - TOLERANCE
     weights = {"pixel": choice.cfg.pixel, "critic": choice.cfg.kappa, "memory": choice.cfg.memory}
