@@ -23,13 +23,16 @@ from knowngood.training.tuning import conformal_threshold
 
 MIN_IMAGES = 12
 SCORE_DEFINITION = (
-    "heatmap = max(0, pixel * z_pixel, kappa * z_critic, perceptual * z_perceptual, memory * z_memory) over the "
-    "terms with a positive weight, where z_* are smoothed maps standardised per pixel (per term for a tiled model) "
+    "heatmap = max(0, combine(pixel * z_pixel, kappa * z_critic, perceptual * z_perceptual, memory * z_memory, "
+    "adversarial * z_adversarial)) over the terms with a positive weight, combine = their maximum, or their sum "
+    "divided by the sum of the weights (model.combine: max or mean), "
+    "where z_* are smoothed maps standardised per pixel (per term for a tiled model) "
     "against held-out known-good images: the image residual |x - G(E(x))| at the best-matching reconstruction "
     "pixel within `residual_shift` px, the critic-feature residual |f(x) - f(G(E(x)))|^2, the per-position term "
     "(mean squared standardised deviation of pretrained EfficientNet-Lite0 features of x from those of the "
-    "known-good images at the best-matching nearby position) and the position-free term (distance of each "
-    "patch's features to the nearest known-good patch in a coreset memory); score = mean of the top "
+    "known-good images at the best-matching nearby position), the position-free term (distance of each "
+    "patch's features to the nearest known-good patch in a coreset memory), and the feature-space adversarial "
+    "term (a critic's score on the pretrained patch features); score = mean of the top "
     "`top_fraction` of the heatmap (tiled: of the worst tile). Higher = less like known-good; flag when "
     "score > threshold. The weights are chosen at train time on synthetic defects (score.choice)."
 )
@@ -249,6 +252,8 @@ def _manifest(good, model, train, result, choice, counts, terms) -> dict:
             "perceptual": model.perceptual,
             "pixel": model.pixel,
             "memory": model.memory,
+            "adversarial": model.adversarial,
+            "combine": model.combine,
             "choice": terms.evidence if terms is not None else {"method": "set by the caller"},
             "unit": "held-out known-good std",
             "direction": "higher = less like known-good; flagged when score > threshold",

@@ -7,11 +7,15 @@ Mann-Whitney probability that a defective copy outranks a good image (scikit-lea
 
 from __future__ import annotations
 
+import dataclasses
+
 import numpy as np
+import pytest
 import torch
 from knowngood.training.config import ModelConfig
 from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
+from knowngood.training.scoring import ScoringGraph
 from knowngood.training.selection import SYNTHETIC_COPIES, TOLERANCE, _image_scores, _ranked, _subsets, choose_terms
 from knowngood.training.synthetic import _crack, _patch, paste_defects, perlin, perlin_mask
 from scipy import ndimage
@@ -85,18 +89,18 @@ def test_every_set_of_two_or_more_terms_is_a_candidate_under_both_rules():
     assert len(several) == 2 * 7  # {critic, memory}, and each shift with one of the 3 non-empty sets of the others
 
 
-def test_the_choice_scores_match_the_scoring_graphs_rule():
-    """`_image_scores` is the selection's restatement of `ScoringGraph.heat_from`; both rules must agree."""
+@pytest.mark.parametrize("rule", ["max", "mean"])
+def test_the_choice_scores_as_the_scoring_graph_does(rule):
+    """`_image_scores` restates `ScoringGraph.heat_from` on maps already standardised; both rules must agree."""
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, perceptual=0, memory=0, adversarial=0, kappa=0.5)
+    cfg = dataclasses.replace(cfg, combine=rule)
+    graph = ScoringGraph(cfg, *build(cfg))  # terms pixel (weight 1) and critic (0.5); mean 0, std 1 as built
     torch.manual_seed(0)
-    z = {"memory": torch.randn(4, 16, 16), "critic": torch.randn(4, 16, 16)}
+    z = {"pixel": torch.randn(4, 32, 32), "critic": torch.randn(4, 32, 32)}
     before = {n: m.clone() for n, m in z.items()}
-    weights = {"memory": 1.0, "critic": 0.5}
-    for rule in ("max", "mean"):
-        heat, scores = _image_scores(z, weights, top_k=3, rule=rule)
-        stacked = torch.stack([z["memory"], z["critic"] * 0.5], 1)
-        expected = (stacked.amax(1) if rule == "max" else stacked.sum(1) / 1.5).clamp(min=0)
-        assert torch.allclose(heat, expected)
-        assert torch.allclose(scores, expected.flatten(1).topk(3, dim=1).values.mean(1))
+    score, heat = graph.heat_from(torch.stack([z["pixel"], z["critic"]], 1))
+    mine_heat, mine_score = _image_scores(z, {"pixel": cfg.pixel, "critic": cfg.kappa}, graph.top_k, rule=rule)
+    assert torch.allclose(mine_heat, heat, atol=1e-6) and torch.allclose(mine_score, score, atol=1e-6)
     assert all(torch.equal(z[n], before[n]) for n in z)  # the maps themselves are left untouched
 
 
