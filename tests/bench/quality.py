@@ -86,6 +86,7 @@ def _knowngood_row(ds: Dataset, run, scores, maps, ms) -> dict:
         inspect_ms_per_image=ms,
         tile=run.detector.cfg.tile,
         terms=term_weights(run.detector.cfg),
+        combine=run.detector.cfg.combine,
         synthetic_image_auroc=evidence.get("image_auroc"),
     )
 

@@ -23,14 +23,13 @@ pytest.importorskip("elpv_dataset")  # a test extra; the data comes with the pac
 STEPS = 100
 N_TRAIN, N_TEST = 150, 60
 # Measured on this split (2 CPU threads, torch 2.14.1, 100 GAN steps, terms chosen on synthetic defects as `train`
-# chooses them): knowngood 0.804 at seed 0 (the seed used here); peers: patch memory (PatchCore on the same frozen
-# features) 0.821, nearest neighbour 0.734, PCA 0.699, mean grey level 0.746 (the previous release scored 0.780).
-# On this reduced split knowngood is 0.017 BELOW the patch-memory peer (on the full benchmark split it is 0.054
-# above: README); the peer check below pins that it stays within PEER_TOLERANCE of it, so a regression of the
-# memory term shows. It pins one recipe and seed, not a claim about knowngood in general; the floors leave room
-# for float differences between CPUs and libraries.
+# chooses them): knowngood 0.834 at seed 0 (the seed used here; the choice: the mean of memory + critic residual +
+# adversarial term); peers: patch memory (PatchCore on the same frozen features) 0.821, nearest neighbour 0.734,
+# PCA 0.699, mean grey level 0.746. Earlier releases scored 0.780 and 0.804 (below the patch-memory peer). The
+# choice's five runners-up, within 0.014 of its criterion, score 0.834 to 0.851 on these test cells, so a float
+# difference between CPUs that tips the choice to one of them still stays above the peer. It pins one recipe and
+# seed, not a claim about knowngood in general; the floor leaves room for float differences between libraries.
 FLOOR = 0.77
-PEER_TOLERANCE = 0.03
 
 
 @pytest.fixture(scope="module")
@@ -71,12 +70,12 @@ def test_knowngood_beats_nearest_neighbour_on_elpv(split, test_batch, knowngood_
     assert knowngood_auroc > nn_auroc, f"knowngood {knowngood_auroc:.3f} vs nearest neighbour {nn_auroc:.3f}"
 
 
-def test_knowngood_stays_near_the_patch_memory_peer_on_elpv(split, test_batch, knowngood_auroc):
+def test_knowngood_beats_the_patch_memory_peer_on_elpv(split, test_batch, knowngood_auroc):
     # peer: PatchCore (Roth et al. 2022) on the same frozen features, no GAN (tests/bench/peers.py), same split
     peer = PatchMemoryPeer().fit(to_model_input(split.train, size=knowngood_runner.SIZE, channels=1))
     memory_auroc = image_auroc(split.labels, peer.score(test_batch)[0])
     print(f"knowngood {knowngood_auroc:.3f}, patch memory {memory_auroc:.3f}")  # seen with `pytest -s`
-    assert knowngood_auroc >= memory_auroc - PEER_TOLERANCE, f"{knowngood_auroc:.3f} vs {memory_auroc:.3f}"
+    assert knowngood_auroc > memory_auroc, f"{knowngood_auroc:.3f} vs {memory_auroc:.3f}"
 
 
 def test_knowngood_clearly_above_chance_on_elpv(knowngood_auroc):
