@@ -151,7 +151,7 @@ def _halved(rule: str, best: dict[str, float]):
             yield rule, {**best, name: 0.5}
 
 
-def _ranked(results: list[tuple[dict, dict]]) -> list[tuple[dict, dict]]:
+def _ranked(results: list[tuple[tuple[str, dict], dict]]) -> list[tuple[tuple[str, dict], dict]]:
     """Best first: among the combinations within TOLERANCE of the best criterion, the one with the fewest terms
     (then the higher criterion). A term enters only if it measurably helps on the pasted defects; more terms
     for a difference inside the noise of a few dozen images would choose by chance."""

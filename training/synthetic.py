@@ -68,7 +68,7 @@ def _patch(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
 
 
 def _crack(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
-    """A crack: a thin wandering line, 1-2 px wide, 10-40 % of the side long, its direction drifting."""
+    """A crack: a thin wandering line, 1 or 3 px wide, 10-40 % of the side long, its direction drifting."""
     h, w = shape
     side = min(h, w)
     y, x = rng.uniform(0.15, 0.85) * h, rng.uniform(0.15, 0.85) * w
