@@ -72,7 +72,7 @@ def all_terms_graph(det: Detector, images: list[np.ndarray]) -> ScoringGraph:
     return graph.eval()
 
 
-def _weight_vector(weights: dict[str, float]) -> torch.Tensor:
+def weight_vector(weights: dict[str, float]) -> torch.Tensor:
     return torch.tensor([weights.get(t, 0.0) for t in TERMS]).view(1, -1, 1, 1)
 
 
@@ -137,7 +137,7 @@ def score_variants(
     the variant with the bundle's own weights and `reference` (the bundle's (scores, heatmaps) on these images)."""
     chosen = term_weights(det.cfg)
     specs = variants(chosen) | {"chosen": chosen}
-    vectors = {name: _weight_vector(w) for name, w in specs.items()}
+    vectors = {name: weight_vector(w) for name, w in specs.items()}
     det_all = Detector(cfg=graph.cfg, graph=graph, threshold=float("inf"))
     if not graph.cfg.tile:
         out = _whole(graph, det_all, images, vectors, keep_maps)

@@ -14,12 +14,14 @@ test figures, and a rule adopted from them must be chosen per model on synthetic
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 import torch
 from knowngood.training import bundle
+from knowngood.training.config import COMBINE_RULES
 from knowngood.training.detector import Detector
-from knowngood.training.scoring import TERMS
+from knowngood.training.scoring import TERMS, ScoringGraph
 from sklearn.metrics import roc_auc_score
 
 from tests.bench import ablation, datasets
@@ -38,29 +40,36 @@ SETS = (
 
 
 @torch.no_grad()
-def standardised_maps(det: Detector, ds: datasets.Dataset) -> tuple[torch.Tensor, int]:
-    """(N, T, H, W) standardised term maps of the test images on the bundle's nets, and the model's top-k."""
+def term_maps(det: Detector, ds: datasets.Dataset) -> tuple[ScoringGraph, torch.Tensor]:
+    """A graph computing every term on the bundle's nets (`ablation.all_terms_graph`) and its raw term maps
+    (N, T, H, W) of the test images."""
     graph = ablation.all_terms_graph(det, ds.train)
     det_all = Detector(cfg=graph.cfg, graph=graph, threshold=float("inf"))
     x = det_all.prepare(ds.test)
-    parts = [graph.term_maps(x[i : i + 16]) for i in range(0, len(x), 16)]
-    z = (torch.cat(parts) - graph.term_mean) / graph.term_std
-    return z, graph.top_k
+    return graph, torch.cat([graph.term_maps(x[i : i + 16]) for i in range(0, len(x), 16)])
 
 
-def image_scores(z: torch.Tensor, terms: tuple[str, ...], rule: str, top_k: int) -> torch.Tensor:
-    picked = z[:, [TERMS.index(t) for t in terms]]
-    heat = (picked.amax(1) if rule == "max" else picked.mean(1)).clamp(min=0)
-    return heat.flatten(1).topk(top_k, dim=1).values.mean(1)
+@torch.no_grad()
+def image_scores(graph: ScoringGraph, maps: torch.Tensor, terms: tuple[str, ...], rule: str) -> torch.Tensor:
+    """Image scores of `terms` at weight 1 under `rule`, through the graph's own `heat_from` (the model's rule,
+    not a restatement of it); the graph's rule and weights are restored afterwards."""
+    cfg, weights = graph.cfg, graph.weights.clone()
+    graph.cfg = dataclasses.replace(cfg, combine=rule)
+    graph.weights.copy_(ablation.weight_vector(dict.fromkeys(terms, 1.0)))
+    try:
+        return graph.heat_from(maps)[0]
+    finally:
+        graph.cfg = cfg
+        graph.weights.copy_(weights)
 
 
 def measure(name: str, bundles: Path, cache: Path) -> dict:
     ds = datasets.load(name, cache)
     det, _ = bundle.load(bundles / f"{name}.kgm")
-    z, top_k = standardised_maps(det, ds)
+    graph, maps = term_maps(det, ds)
     out = {}
     for terms in SETS:
-        row = {rule: image_scores(z, terms, rule, top_k).double().numpy() for rule in ("max", "mean")}
+        row = {rule: image_scores(graph, maps, terms, rule).double().numpy() for rule in COMBINE_RULES}
         out[" + ".join(terms)] = {rule: round(float(roc_auc_score(ds.labels, s)), 4) for rule, s in row.items()}
     return out
 

@@ -6,8 +6,11 @@ from __future__ import annotations
 
 import numpy as np
 import torch
+from knowngood.training.config import ModelConfig
 from knowngood.training.metrics import image_auroc
-from knowngood.training.scoring import TERMS
+from knowngood.training.nets import build
+from knowngood.training.perceptual import load_pretrained
+from knowngood.training.scoring import TERMS, ScoringGraph
 
 from tests.bench.combination_levers import image_scores
 from tests.bench.memory import cycled, own_peak_rss_mib
@@ -58,15 +61,19 @@ def test_the_training_memory_figure_is_the_childs_own_peak_not_the_parents(tmp_p
 
 
 def test_the_combination_rules_of_the_terms():
-    """combination_levers' two rules on standardised maps: one term gives the same score under both; with two,
-    the maximum's score is never below the mean's, and equals the larger term's where that one dominates."""
-    z = torch.zeros(3, len(TERMS), 8, 8)
+    """combination_levers' two rules, through a graph's own heat_from on standardised maps (mean 0, std 1 as built):
+    one term gives the same score under both; with two, the maximum's score is never below the mean's, and equals
+    the larger term's where that one dominates."""
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, memory_size=16, top_fraction=4 / 1024)
+    graph = ScoringGraph(cfg, *build(cfg), perceptual=load_pretrained())  # every term: the maps follow TERMS
+    z = torch.zeros(3, len(TERMS), 32, 32)
     z[:, TERMS.index("memory")] = torch.arange(3.0).view(3, 1, 1)  # image i: memory z = i everywhere
     z[:, TERMS.index("critic"), :2, :2] = 10.0  # a small hot spot of the critic residual in every image
     one = ("memory",)
-    assert torch.equal(image_scores(z, one, "max", 4), image_scores(z, one, "mean", 4))
+    assert torch.equal(image_scores(graph, z, one, "max"), image_scores(graph, z, one, "mean"))
     two = ("memory", "critic")
-    top_max, top_mean = image_scores(z, two, "max", 4), image_scores(z, two, "mean", 4)
+    top_max, top_mean = image_scores(graph, z, two, "max"), image_scores(graph, z, two, "mean")
     assert torch.allclose(top_max, torch.full((3,), 10.0))  # the top 4 pixels are the critic's 2 x 2 spot
     assert torch.allclose(top_mean, (10.0 + torch.arange(3.0)) / 2)
     assert bool((top_max >= top_mean).all())
+    assert graph.cfg.combine == cfg.combine and bool((graph.weights == 1).all())  # restored afterwards
