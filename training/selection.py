@@ -26,7 +26,7 @@ from sklearn.metrics import roc_auc_score
 PIXEL_WEIGHT = 0.25  # share of the pixel AUROC in the criterion
 PIXEL_SAMPLE = 20000
 TOLERANCE = 0.005  # criterion differences below this count as ties (see _ranked)
-SYNTHETIC_COPIES = 5  # defective copies of each held-out image, one of each kind (synthetic.KINDS)
+SYNTHETIC_COPIES = 5  # defective copies of each held-out image, each of another kind (synthetic.KINDS)
 # candidate name -> the settings it stands for; the two residual shifts are alternatives of one term
 OTHERS = {
     "critic": "kappa",
@@ -214,7 +214,8 @@ def choose_terms(
             settings.update(candidates(shifts)[name], **{_field(name): w})
     cfg = _with_weights(base, **settings)
     evidence = {
-        "method": "synthetic defects (CutPaste rectangles and scars, Perlin-noise blobs) in held-out known-good images",
+        "method": "synthetic defects (CutPaste rectangles and scars, Perlin-noise blobs and areas, cracks, cut-off "
+        "regions) in held-out known-good images",
         "criterion": f"image AUROC + {PIXEL_WEIGHT} x pixel AUROC",
         "images": {"good": len(good_x), "synthetic": len(bad_x)},
         "chosen": {n: float(best.get(n, 0.0)) for n in graphs},

@@ -1,13 +1,14 @@
 """Synthetic defects pasted into held-out known-good images, to choose a model's terms without any real defect.
 
-Five kinds of mask, each filled with another image's content, a brightness change or a noise texture, blended at
+Six kinds of mask, each filled with another image's content, a brightness change or a noise texture, blended at
 a random opacity:
 - CutPaste (Li et al., CVPR 2021): a rectangle cut from another known-good image, optionally flipped and with its
   brightness changed, pasted at a random place; and its "scar" variant, a thin rotated strip;
 - Perlin-noise masks (Zavrtanik et al., DRAEM, ICCV 2021): a blob of thresholded Perlin noise;
-- two of our own, for the commonest defects the three above leave out (common practice: cracks and large
+- three of our own, for the commonest defects the three above leave out (common practice: cracks and large
   discoloured or inactive areas are everyday defects of cast, sintered and laminated parts and of solar cells): a
-  crack, a thin line whose direction wanders, and a large Perlin area of 15-35 % of the side.
+  crack, a thin line whose direction wanders; a large Perlin area of 15-35 % of the side; and a region cut off by
+  a wandering edge, 10-45 % of the image (a side of the part inactive, shaded or discoloured).
 Strengths run from faint to obvious, so the choice is made on defects near the limit of what a model sees, not
 only on ones every term catches (model selection on synthetic anomalies: Fung et al. 2023).
 """
@@ -87,6 +88,18 @@ def _crack(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
     return mask
 
 
+def _region(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
+    """A region cut off by a wandering edge (an inactive or delaminated part, a shaded or discoloured side): the
+    side of a random line that holds 10-45 % of the area, its edge bent by low-frequency Perlin noise."""
+    h, w = shape
+    side = min(h, w)
+    a = rng.uniform(0, 2 * math.pi)
+    yy, xx = np.mgrid[0:h, 0:w]
+    across = ((xx - w / 2) * math.cos(a) + (yy - h / 2) * math.sin(a)) / side
+    across = across + rng.uniform(0.02, 0.08) * perlin(shape, (2, 2), rng)
+    return across >= np.quantile(across, 1 - rng.uniform(0.1, 0.45))
+
+
 def _strip(shape: tuple[int, int], rng: np.random.Generator) -> np.ndarray:
     """CutPaste-scar: a thin strip, 1-3 % of the side wide, 10-30 % long, at a random angle."""
     h, w = shape
@@ -128,14 +141,15 @@ def _filling(img: np.ndarray, donor: np.ndarray, rng: np.random.Generator) -> np
     return np.clip(img.mean() + rng.uniform(0.1, 0.35) * texture[None] + rng.normal(0, 0.03, img.shape), 0, 1)
 
 
-KINDS = (_rectangle, _strip, perlin_mask, _crack, _patch)
+KINDS = (_rectangle, _strip, perlin_mask, _crack, _patch, _region)
 
 
 def paste_defects(x: torch.Tensor, *, copies: int = 1, seed: int = 0) -> tuple[torch.Tensor, torch.Tensor]:
     """x (N, C, H, W) known-good images in [0, 1] -> (defective copies (copies * N, C, H, W), masks
     (copies * N, H, W) bool); copy k of image i is at k * N + i.
 
-    Each copy has one defect, of the `KINDS` in turn (copy k of image i: kind (i + k) mod 5); the content comes
+    Each copy has one defect, of the `KINDS` in turn (copy k of image i: kind (i + k) mod 6, so
+    five copies of an image are five different kinds, and every kind is as frequent); the content comes
     from another image of x (or is a brightness change / noise texture) and is blended at opacity 0.3-1."""
     rng = np.random.default_rng(seed)
     imgs = x.numpy()

@@ -17,7 +17,7 @@ from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import ScoringGraph
 from knowngood.training.selection import SYNTHETIC_COPIES, TOLERANCE, _image_scores, _ranked, _subsets, choose_terms
-from knowngood.training.synthetic import _crack, _patch, paste_defects, perlin, perlin_mask
+from knowngood.training.synthetic import _crack, _patch, _region, paste_defects, perlin, perlin_mask
 from scipy import ndimage
 
 
@@ -61,6 +61,17 @@ def test_cracks_are_thin_connected_lines_and_large_areas_are_larger_than_blobs()
     large = np.mean([_patch((128, 128), rng).mean() for _ in range(30)])
     blobs = np.mean([perlin_mask((128, 128), rng).mean() for _ in range(30)])
     assert large > 3 * blobs
+
+
+def test_regions_are_one_piece_touching_the_border_and_hold_a_tenth_to_a_half_of_the_image():
+    rng = np.random.default_rng(4)
+    for _ in range(20):
+        region = _region((96, 128), rng)
+        _, parts = ndimage.label(region)  # scipy, a reference library
+        assert parts == 1
+        assert 0.09 <= region.mean() <= 0.46
+        border = np.r_[region[0], region[-1], region[:, 0], region[:, -1]]
+        assert border.any() and not border.all()  # a side of the part is cut off, not a hole inside it
 
 
 def test_ranking_prefers_fewer_terms_within_the_tolerance():
