@@ -16,7 +16,8 @@ from pathlib import Path
 import httpx
 import numpy as np
 
-from tests.bench.bench_service import ADMIN, SWAP, _channels, _drive, _images, _latency, _start, _statuses
+from tests.bench import service_load as load
+from tests.bench.service_load import ADMIN, SWAP
 
 SERVICE_TESTS = Path(__file__).resolve().parent.parent / "service"
 
@@ -35,7 +36,7 @@ def _throughput(urls: list[str], images: list[bytes], clients: int, seconds: flo
     results: dict[str, tuple[list, float]] = {}
 
     def drive(url: str) -> None:
-        results[url] = _drive(url, images, clients, seconds=seconds)
+        results[url] = load.drive(url, images, clients, seconds=seconds)
 
     threads = [threading.Thread(target=drive, args=(u,)) for u in urls]
     for t in threads:
@@ -50,8 +51,8 @@ def _throughput(urls: list[str], images: list[bytes], clients: int, seconds: flo
         "clients": clients * len(urls),
         "seconds": round(wall, 2),
         "requests_per_s": round(ok / wall, 2),
-        "statuses": _statuses(samples),
-        **_latency(samples),
+        "statuses": load.statuses(samples),
+        **load.latency(samples),
     }
 
 
@@ -76,7 +77,7 @@ def run(bundle_path: Path, *, seconds: float = 20, clients: int = 2, repeats: in
     from knowngood.training import bundle
 
     det, frechet = bundle.load(bundle_path)
-    images = _images(16, det.cfg.size, _channels(bundle_path))
+    images = load.images(16, det.cfg.size, load.channels(bundle_path))
     pg = _postgres()
     procs = []
     try:
@@ -92,12 +93,12 @@ def run(bundle_path: Path, *, seconds: float = 20, clients: int = 2, repeats: in
             for name in ("a", "b"):
                 folder = Path(tmp) / name
                 folder.mkdir()
-                proc, url, startup = _start(bundle_path, folder, threads=1, db=db, env_extra=env)
+                proc, url, startup = load.start(bundle_path, folder, threads=1, db=db, env_extra=env)
                 procs.append(proc)
                 started.append((url, startup))
             (a, _), (b, _) = started
-            _drive(a, images, 1, count=5)  # warm-up (first scoring pass) on both
-            _drive(b, images, 1, count=5)
+            load.drive(a, images, 1, count=5)  # warm-up (first scoring pass) on both
+            load.drive(b, images, 1, count=5)
             one = _throughput([a], images, clients * 2, seconds)
             two = _throughput([a, b], images, clients, seconds)
             swaps = _propagation(a, b, others + [Path(bundle_path).read_bytes()], repeats)
