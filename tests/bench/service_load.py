@@ -6,10 +6,7 @@ from __future__ import annotations
 
 import io
 import json
-import os
-import socket
 import subprocess
-import sys
 import threading
 import time
 import zipfile
@@ -20,15 +17,10 @@ import httpx
 import numpy as np
 from PIL import Image
 
-STATION = "bench-station-token-0001"
-ADMIN = "bench-admin-token-00001"
+from tests.service import service_testkit as kit
+from tests.service.service_testkit import ADMIN, STATION
+
 SWAP = {"operator": "bench", "reason": "model swap under load"}  # a swap says who and why
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def status_kib(pid: int, field: str) -> int:
@@ -63,43 +55,11 @@ def images(n: int, size: int, channels: int, seed: int = 0) -> list[bytes]:
 def start(
     bundle_path: Path, folder: Path, threads: int, *, db: str | None = None, env_extra: dict | None = None
 ) -> tuple[subprocess.Popen, str, float]:
-    port = free_port()
-    cmd = [
-        sys.executable,
-        "-m",
-        "knowngood.training.cli",
-        "serve",
-        str(Path(bundle_path).resolve()),  # the server runs in `folder`: a relative path would miss
-        "--port",
-        str(port),
-        "--db",
-        db or str(folder / "audit.db"),
-        "--data-dir",
-        str(folder / "data"),
-    ]
-    env = {
-        **os.environ,
-        "KNOWNGOOD_STATION_TOKENS": STATION,
-        "KNOWNGOOD_ADMIN_TOKENS": ADMIN,
-        "KNOWNGOOD_TORCH_THREADS": str(threads),
-        "KNOWNGOOD_LOG_LEVEL": "warning",
-        **(env_extra or {}),
-    }
-    log = open(folder / "server.log", "wb")
-    start = time.perf_counter()
-    proc = subprocess.Popen(cmd, stdout=log, stderr=subprocess.STDOUT, env=env, cwd=folder)
-    url = f"http://127.0.0.1:{port}"
-    while time.perf_counter() - start < 120:
-        if proc.poll() is not None:
-            raise RuntimeError(f"server exited ({proc.returncode}): {(folder / 'server.log').read_text()[-2000:]}")
-        try:
-            if httpx.get(url + "/readyz", timeout=1).status_code == 200:
-                return proc, url, time.perf_counter() - start
-        except httpx.TransportError:
-            pass
-        time.sleep(0.05)
-    proc.kill()
-    raise RuntimeError("server not ready within 120 s")
+    """`knowngood serve` as the service tests start it (`service_testkit.start_server`), with `threads` scoring
+    threads: its process, its URL and the seconds until it was ready."""
+    env = {"KNOWNGOOD_TORCH_THREADS": str(threads), "KNOWNGOOD_LOG_LEVEL": "warning", **(env_extra or {})}
+    server = kit.start_server(Path(bundle_path).resolve(), folder, extra_env=env, db=db)
+    return server.proc, server.url, server.startup_s
 
 
 def client(
