@@ -3,9 +3,10 @@ synthetic defects pasted into held-out known-good images (`synthetic.py`), never
 
 Every candidate term is computed once on the held-out known-good images and on their defective copies, each
 standardised as the final model will standardise it; every combination of weights is then scored by how well it
-separates the two (image AUROC, scikit-learn) plus a quarter of how well its heatmap finds the pasted masks
-(pixel AUROC on a fixed sample of pixels), which keeps ordering combinations when several separate the images
-perfectly. The combinations: every set of terms at weight 1 (one residual shift at most), each set of two or
+separates the two (image AUROC, scikit-learn); how well its heatmap finds the pasted masks (pixel AUROC on a
+fixed sample of pixels) only breaks ties, e.g. when several combinations separate the images perfectly. A share of
+the pixel AUROC in the criterion favoured terms whose maps are sharp at pasted masks over those that rank real
+defective images (README, levers). The combinations: every set of terms at weight 1 (one residual shift at most), each set of two or
 more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then the best set with each of
 its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into the
 bundle.
@@ -23,9 +24,8 @@ from knowngood.training.scoring import ScoringGraph
 from knowngood.training.synthetic import paste_defects
 from sklearn.metrics import roc_auc_score
 
-PIXEL_WEIGHT = 0.25  # share of the pixel AUROC in the criterion
 PIXEL_SAMPLE = 20000
-TOLERANCE = 0.005  # criterion differences below this count as ties (see _ranked)
+TOLERANCE = 0.005  # image AUROC differences below this count as ties (see _ranked)
 SYNTHETIC_COPIES = 5  # defective copies of each held-out image, each of another kind (synthetic.KINDS)
 # candidate name -> the settings it stands for; the two residual shifts are alternatives of one term
 OTHERS = {
@@ -152,14 +152,14 @@ def _halved(rule: str, best: dict[str, float]):
 
 
 def _ranked(results: list[tuple[tuple[str, dict], dict]]) -> list[tuple[tuple[str, dict], dict]]:
-    """Best first: among the combinations within TOLERANCE of the best criterion, the one with the fewest terms
-    (then the higher criterion). A term enters only if it measurably helps on the pasted defects; more terms
-    for a difference inside the noise of a few dozen images would choose by chance."""
-    top = max(e["criterion"] for _, e in results)
+    """Best first: among the combinations within TOLERANCE of the best image AUROC, the one with the fewest terms
+    (then the higher image AUROC, then the higher pixel AUROC). A term enters only if it measurably helps on the
+    pasted defects; more terms for a difference inside the noise of a few dozen images would choose by chance."""
+    top = max(e["image_auroc"] for _, e in results)
 
     def key(r):
-        near = r[1]["criterion"] >= top - TOLERANCE
-        return (not near, len(r[0][1]) if near else 0, -r[1]["criterion"])
+        near = r[1]["image_auroc"] >= top - TOLERANCE
+        return (not near, len(r[0][1]) if near else 0, -r[1]["image_auroc"], -r[1]["pixel_auroc"])
 
     return sorted(results, key=key)
 
@@ -201,7 +201,7 @@ def choose_terms(
         heat, scores = _image_scores(z, combo[1], top_k, rule=combo[0])
         img = float(roc_auc_score(labels, scores.numpy()))
         pix = float(roc_auc_score(pix_labels[sample].numpy(), heat.flatten()[sample].numpy()))
-        return {"image_auroc": round(img, 4), "pixel_auroc": round(pix, 4), "criterion": img + PIXEL_WEIGHT * pix}
+        return {"image_auroc": round(img, 4), "pixel_auroc": round(pix, 4)}
 
     alone = {n: evaluate(("max", {n: 1.0})) for n in graphs}
 
@@ -216,13 +216,13 @@ def choose_terms(
     evidence = {
         "method": "synthetic defects (CutPaste rectangles and scars, Perlin-noise blobs and areas, cracks, cut-off "
         "regions) in held-out known-good images",
-        "criterion": f"image AUROC + {PIXEL_WEIGHT} x pixel AUROC",
+        "criterion": "image AUROC; pixel AUROC breaks ties",
         "images": {"good": len(good_x), "synthetic": len(bad_x)},
         "chosen": {n: float(best.get(n, 0.0)) for n in graphs},
         "combine": rule,
         "image_auroc": best_eval["image_auroc"],
         "pixel_auroc": best_eval["pixel_auroc"],
-        "alone": {n: {k: v for k, v in e.items() if k != "criterion"} for n, e in alone.items()},
+        "alone": alone,
         "runners_up": [
             {
                 "weights": {n: w for n, w in combo.items() if w > 0},

@@ -74,19 +74,36 @@ def test_regions_are_one_piece_touching_the_border_and_hold_a_tenth_to_a_half_of
         assert border.any() and not border.all()  # a side of the part is cut off, not a hole inside it
 
 
+def _ev(image: float, pixel: float = 0.5) -> dict:
+    return {"image_auroc": image, "pixel_auroc": pixel}
+
+
 def test_ranking_prefers_fewer_terms_within_the_tolerance():
     results = [
-        (("max", {"memory": 1.0, "critic": 1.0}), {"criterion": 1.20}),
-        (("max", {"memory": 1.0}), {"criterion": 1.20 - TOLERANCE / 2}),
-        (("max", {"critic": 1.0}), {"criterion": 1.10}),
+        (("max", {"memory": 1.0, "critic": 1.0}), _ev(0.90)),
+        (("max", {"memory": 1.0}), _ev(0.90 - TOLERANCE / 2)),
+        (("max", {"critic": 1.0}), _ev(0.80)),
     ]
     assert _ranked(results)[0][0] == ("max", {"memory": 1.0})
     clear = [
-        (("mean", {"memory": 1.0, "critic": 1.0}), {"criterion": 1.25}),
-        (("max", {"memory": 1.0, "critic": 1.0}), {"criterion": 1.22}),
-        (("max", {"memory": 1.0}), {"criterion": 1.20}),
+        (("mean", {"memory": 1.0, "critic": 1.0}), _ev(0.95)),
+        (("max", {"memory": 1.0, "critic": 1.0}), _ev(0.92)),
+        (("max", {"memory": 1.0}), _ev(0.90)),
     ]
     assert _ranked(clear)[0][0] == ("mean", {"memory": 1.0, "critic": 1.0})  # a clear gain earns the second term
+
+
+def test_the_image_auroc_decides_and_the_pixel_auroc_only_breaks_ties():
+    higher_image = [
+        (("max", {"pixel@0": 1.0}), _ev(0.90, pixel=0.99)),
+        (("max", {"memory": 1.0}), _ev(0.90 + TOLERANCE / 2, pixel=0.60)),
+    ]
+    assert _ranked(higher_image)[0][0] == ("max", {"memory": 1.0})  # a sharper map does not outweigh the images
+    saturated = [
+        (("max", {"memory": 1.0}), _ev(1.0, pixel=0.80)),
+        (("max", {"critic": 1.0}), _ev(1.0, pixel=0.95)),
+    ]
+    assert _ranked(saturated)[0][0] == ("max", {"critic": 1.0})  # every image separated: the map decides
 
 
 def test_every_set_of_two_or_more_terms_is_a_candidate_under_both_rules():
