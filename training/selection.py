@@ -3,12 +3,12 @@ synthetic defects pasted into held-out known-good images (`synthetic.py`), never
 
 Every candidate term is computed once on the held-out known-good images and on their defective copies, each
 standardised as the final model will standardise it; every combination of weights is then scored by how well it
-separates the two (image AUROC, scikit-learn); how well its heatmap finds the pasted masks (pixel AUROC on a
-fixed sample of pixels) only breaks ties, e.g. when several combinations separate the images perfectly. A share of
-the pixel AUROC in the criterion favoured terms whose maps are sharp at pasted masks over those that rank real
-defective images (README, levers). The combinations: every set of terms at weight 1 (one residual shift at most), each set of two or
-more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then the best set with each of
-its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into the
+separates the two (image AUROC, scikit-learn); how well its heatmap finds the pasted masks (pixel AUROC on a fixed
+sample of pixels) only breaks ties, e.g. when several combinations separate the images perfectly. A share of the
+pixel AUROC in the criterion favoured terms whose maps are sharp at pasted masks over those that rank real defective
+images (README, levers). The combinations: every set of terms at weight 1 (one residual shift at most), each set of
+two or more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then the best set with
+each of its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into the
 bundle.
 """
 
