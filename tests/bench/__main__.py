@@ -169,6 +169,13 @@ def main(argv: list[str] | None = None) -> int:
             "by_size": speed.by_size(repeats=args.speed_repeats),
             "tiled": speed.tiled(repeats=args.speed_repeats),
         }
+        tiled_bundle = args.out.parent / "bundles" / f"{datasets.LARGE}.kgm"
+        if datasets.LARGE in args.names and tiled_bundle.exists():  # the model as chosen, trained in this run
+            det, _ = bundle.load(tiled_bundle)
+            result["speed"]["tiled_bundle"] = {
+                "bundle_of": datasets.LARGE,
+                **speed.tiled(repeats=args.speed_repeats, det=det),
+            }
         if ref:
             det, _ = bundle.load(bundles[ref])
             native = datasets.native_images(ref, args.cache, "test", 32)
@@ -276,6 +283,11 @@ def print_sections(result: dict) -> None:
             f"\nTiled inspection ({t['tile']} px tiles, ONNX Runtime): {t['seconds_per_megapixel']:.2f} s per "
             f"megapixel ({t['image_side']} px image, {t['tiles']} tiles, {t['seconds_per_image']:.1f} s)"
         )
+        if t := sp.get("tiled_bundle"):
+            print(
+                f"The {t['bundle_of']} bundle as chosen ({' + '.join(t['terms'])}): "
+                f"{t['seconds_per_megapixel']:.2f} s per megapixel ({t['tiles']} tiles of {t['tile']} px)"
+            )
     if "batches" in sp:
         print(f"\n## Inspection speed of the {sp['bundle_of']} bundle ({' x '.join(map(str, sp['image_size']))} px)\n")
         print(speed.markdown(sp))

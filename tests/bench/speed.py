@@ -5,16 +5,21 @@ Three parts: `measure`, a trained bundle on its dataset's images; `by_size`, ms 
 batch 1 and 32, eager and ONNX Runtime (as the service runs it, `Detector.use_onnx`); `tiled`, seconds per
 megapixel of a tiled model (`Detector.score_images` on a 2048 x 2048 image, 128 px tiles, ONNX Runtime). The
 last two use untrained graphs with every term (`synthetic_detector`): the time does not depend on the weights'
-values, and every term is the most work a model can be chosen to do.
+values, and every term is the most work a model can be chosen to do; `tiled` also times the run's trained tiled
+bundle with the terms it was chosen with (alone: `python -m tests.bench.speed --tiled BUNDLE`).
 """
 
 from __future__ import annotations
 
+import argparse
+import json
 import statistics
 import time
+from pathlib import Path
 
 import numpy as np
 import torch
+from knowngood.training import bundle
 from knowngood.training.bundle import new_graph
 from knowngood.training.config import ModelConfig
 from knowngood.training.detector import Detector, tile_boxes
@@ -144,18 +149,21 @@ def by_size(repeats: int = 20) -> dict:
     return out
 
 
-def tiled(repeats: int = 20) -> dict:
+def tiled(repeats: int = 20, det: Detector | None = None) -> dict:
     """Seconds per megapixel of `Detector.score_images` (tiles, stitched heatmap at native resolution and worst
-    tile's score) on one `TILED_SIDE` px image, `TILE` px tiles at 128 px working size, ONNX Runtime."""
+    tile's score) on one `TILED_SIDE` px image, ONNX Runtime: of `det` (a trained tiled bundle, with the terms it
+    was chosen with) or of an untrained model with every term, `TILE` px tiles at 128 px working size."""
     torch.set_num_threads(THREADS)
-    det = synthetic_detector(128, tile=TILE).use_onnx(threads=THREADS)
-    image = np.random.default_rng(0).random((1, TILED_SIDE, TILED_SIDE), dtype=np.float32)
+    det = (det or synthetic_detector(128, tile=TILE)).use_onnx(threads=THREADS)
+    assert det.cfg.tile, "a tiled model"
+    image = np.random.default_rng(0).random((det.cfg.channels, TILED_SIDE, TILED_SIDE), dtype=np.float32)
     ms = median_ms(lambda: det.score_images([image]), max(2, repeats // 10), warmup=1)
     megapixels = TILED_SIDE * TILED_SIDE / 1e6
     return {
         "image_side": TILED_SIDE,
-        "tile": TILE,
-        "tiles": len(tile_boxes((TILED_SIDE, TILED_SIDE), TILE)),
+        "tile": det.cfg.tile,
+        "tiles": len(tile_boxes((TILED_SIDE, TILED_SIDE), det.cfg.tile)),
+        "terms": list(term_weights(det.cfg)),
         "seconds_per_image": round(ms / 1000, 2),
         "seconds_per_megapixel": round(ms / 1000 / megapixels, 3),
         "engine": "onnxruntime",
@@ -195,3 +203,16 @@ def markdown_by_size(sizes: dict) -> str:
                 f"{row['flops_per_image'] / 1e9:.2f} |"
             )
     return "\n".join(lines)
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = argparse.ArgumentParser(description="Tiled inspection speed of a trained tiled bundle (JSON).")
+    parser.add_argument("--tiled", type=Path, required=True, help="a tiled .kgm bundle")
+    parser.add_argument("--repeats", type=int, default=30)
+    args = parser.parse_args(argv)
+    print(json.dumps({"bundle": args.tiled.name, **tiled(args.repeats, det=bundle.load(args.tiled)[0])}, indent=1))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

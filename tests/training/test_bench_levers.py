@@ -77,3 +77,19 @@ def test_the_combination_rules_of_the_terms():
     assert torch.allclose(top_mean, (10.0 + torch.arange(3.0)) / 2)
     assert bool((top_max >= top_mean).all())
     assert graph.cfg.combine == cfg.combine and bool((graph.weights == 1).all())  # restored afterwards
+
+
+def test_the_tiled_speed_of_a_trained_bundle_is_timed_with_the_terms_it_was_chosen_with():
+    """`speed.tiled(det=...)` times the model as given (its terms, its tile size), not the every-term default."""
+    from knowngood.training.bundle import new_graph
+    from knowngood.training.detector import Detector, tile_boxes
+
+    from tests.bench import speed
+
+    cfg = ModelConfig(size=32, tile=512, width=8, z_channels=4, kappa=0.0, perceptual=0.0, memory=0.0, adversarial=0.0)
+    det = Detector(cfg=cfg, graph=new_graph(cfg).eval(), threshold=float("inf"))
+    out = speed.tiled(repeats=2, det=det)
+    assert out["terms"] == ["pixel"]
+    assert out["tile"] == 512
+    assert out["tiles"] == len(tile_boxes((speed.TILED_SIDE, speed.TILED_SIDE), 512)) > 16  # the tiles overlap
+    assert out["seconds_per_megapixel"] > 0 and out["engine"] == "onnxruntime"
