@@ -224,12 +224,7 @@ def choose_terms(
         "pixel_auroc": best_eval["pixel_auroc"],
         "alone": alone,
         "runners_up": [
-            {
-                "weights": {n: w for n, w in combo.items() if w > 0},
-                "combine": combo_rule,
-                "image_auroc": e["image_auroc"],
-                "pixel_auroc": e["pixel_auroc"],
-            }
+            {"weights": {n: w for n, w in combo.items() if w > 0}, "combine": combo_rule, **e}
             for (combo_rule, combo), e in results[1:6]
         ],
     }

@@ -148,7 +148,7 @@ def paste_defects(x: torch.Tensor, *, copies: int = 1, seed: int = 0) -> tuple[t
     """x (N, C, H, W) known-good images in [0, 1] -> (defective copies (copies * N, C, H, W), masks
     (copies * N, H, W) bool); copy k of image i is at k * N + i.
 
-    Each copy has one defect, of the `KINDS` in turn (copy k of image i: kind (i + k) mod 6: five
+    Each copy has one defect, of the `KINDS` in turn (copy k of image i: kind (i + k) mod len(KINDS): five
     copies of an image are five different kinds, and each kind is about as frequent); the content comes
     from another image of x (or is a brightness change / noise texture) and is blended at opacity 0.3-1."""
     rng = np.random.default_rng(seed)

@@ -6,12 +6,15 @@ from __future__ import annotations
 
 import numpy as np
 import torch
+from knowngood.training.bundle import new_graph
 from knowngood.training.config import ModelConfig
+from knowngood.training.detector import Detector, tile_boxes
 from knowngood.training.metrics import image_auroc
 from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import TERMS, ScoringGraph
 
+from tests.bench import speed
 from tests.bench.combination_levers import image_scores
 from tests.bench.memory import cycled, own_peak_rss_mib
 from tests.bench.peers import PatchMemoryPeer
@@ -81,11 +84,6 @@ def test_the_combination_rules_of_the_terms():
 
 def test_the_tiled_speed_of_a_trained_bundle_is_timed_with_the_terms_it_was_chosen_with():
     """`speed.tiled(det=...)` times the model as given (its terms, its tile size), not the every-term default."""
-    from knowngood.training.bundle import new_graph
-    from knowngood.training.detector import Detector, tile_boxes
-
-    from tests.bench import speed
-
     cfg = ModelConfig(size=32, tile=512, width=8, z_channels=4, kappa=0.0, perceptual=0.0, memory=0.0, adversarial=0.0)
     det = Detector(cfg=cfg, graph=new_graph(cfg).eval(), threshold=float("inf"))
     out = speed.tiled(repeats=2, det=det)
