@@ -8,6 +8,7 @@ from dataclasses import dataclass, fields
 from knowngood.training.errors import BadConfig
 
 TERM_FIELDS = ("pixel", "kappa", "perceptual", "memory", "adversarial")  # the terms' weights in ModelConfig
+MEMORY_POOLS = (1, 2)  # the memory's patch strides (x 4 px) a model may use; the choice tries each (selection.py)
 COMBINE_RULES = ("max", "mean")  # how the terms' maps make one heatmap (scoring.ScoringGraph.heat_from)
 
 
@@ -29,6 +30,9 @@ class ModelConfig:
     adversarial: float = 1.0  # weight of the feature-space adversarial term (feature_critic.py)
     combine: str = "max"  # heatmap = the weighted standardised terms' "max" (strongest evidence) or "mean"
     memory_size: int = 4096  # patches kept in the memory by greedy coreset selection (fewer when fewer exist)
+    # feature cells (of 4 px) each memory patch averages, pool x pool: 1 = a patch every 4 px; 2 = every 8 px, a
+    # quarter of the positions to search, so 4 x the entries cost the same (memory.py; chosen per model)
+    memory_pool: int = 1
     residual_shift: int = 1  # px the reconstruction may be off and still explain a pixel (see scoring.py)
     perceptual_shift: int = 1  # positions (of 4 px) a feature may move and still match known-good (fixture jitter)
     smooth_sigma: float = 2.0  # Gaussian smoothing of the anomaly map, in working-resolution pixels
@@ -57,6 +61,8 @@ class ModelConfig:
             raise BadConfig(f"tile must be 0 or 32 to 4096 px with a square working size, got {self.tile}")
         if not 1 <= self.memory_size <= 65536:
             raise BadConfig(f"memory_size must be 1 to 65536, got {self.memory_size}")
+        if self.memory_pool not in MEMORY_POOLS:
+            raise BadConfig(f"memory_pool must be one of {', '.join(map(str, MEMORY_POOLS))}, got {self.memory_pool}")
         for name in ("residual_shift", "perceptual_shift"):
             if not 0 <= getattr(self, name) <= 3:
                 raise BadConfig(f"{name} must be 0 to 3, got {getattr(self, name)}")

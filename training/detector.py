@@ -78,7 +78,8 @@ class Detector:
         h, w = self.cfg.shape
         if self.cfg.memory <= 0:
             return 32
-        per_image = (h // 4) * (w // 4) * self.cfg.memory_size * 4
+        stride = 4 * self.cfg.memory_pool  # px between the memory's patches
+        per_image = (h // stride) * (w // stride) * self.cfg.memory_size * 4
         return int(max(1, min(32, 64 * 2**20 // per_image)))
 
     @torch.inference_mode()

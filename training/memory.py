@@ -24,19 +24,27 @@ def local_average(phi: torch.Tensor) -> torch.Tensor:
     return F.avg_pool2d(phi, NEIGHBOURHOOD, stride=1, padding=NEIGHBOURHOOD // 2, count_include_pad=False)
 
 
+def memory_features(phi: torch.Tensor, pool: int = 1) -> torch.Tensor:
+    """(B, C, h, w) -> (B, C, h // pool, w // pool): the locally averaged features, then averaged over pool x pool
+    cells (`ModelConfig.memory_pool`): a coarser patch, a quarter of the positions at pool 2."""
+    phi = local_average(phi)
+    return F.avg_pool2d(phi, pool) if pool > 1 else phi
+
+
 def as_patches(phi: torch.Tensor) -> torch.Tensor:
     """(B, C, h, w) -> (B * h * w, C) patch features."""
     return phi.permute(0, 2, 3, 1).reshape(-1, phi.shape[1])
 
 
-def patch_features(phi: torch.Tensor, batch: int = 32) -> torch.Tensor:
-    """(N, C, h, w) pretrained features -> (N * h * w, C) locally averaged patch features, written `batch` images
-    at a time into one tensor: no full-size temporaries (with 2000 training images, each is hundreds of MB)."""
-    n, c, h, w = phi.shape
+def patch_features(phi: torch.Tensor, batch: int = 32, pool: int = 1) -> torch.Tensor:
+    """(N, C, h, w) pretrained features -> (N * h' * w', C) patch features (`memory_features`), written `batch`
+    images at a time into one tensor: no full-size temporaries (with 2000 training images, each is hundreds of MB)."""
+    n, c = phi.shape[:2]
+    h, w = phi.shape[2] // pool, phi.shape[3] // pool
     out = torch.empty(n * h * w, c, dtype=phi.dtype, device=phi.device)
     for i in range(0, n, batch):
         chunk = phi[i : i + batch]
-        out[i * h * w : (i + len(chunk)) * h * w] = as_patches(local_average(chunk))
+        out[i * h * w : (i + len(chunk)) * h * w] = as_patches(memory_features(chunk, pool))
     return out
 
 

@@ -14,7 +14,7 @@ import torch
 import torch.nn.functional as F
 from knowngood.training.config import ModelConfig
 from knowngood.training.feature_critic import FeatureCritic
-from knowngood.training.memory import build_memory, local_average, nearest_distance, patch_features
+from knowngood.training.memory import build_memory, memory_features, nearest_distance, patch_features
 from knowngood.training.nets import Critic, Encoder, Generator
 from knowngood.training.perceptual import PerceptualNet
 from torch import nn
@@ -161,11 +161,21 @@ class ScoringGraph(nn.Module):
             if "perceptual" in self.terms:
                 coarse.append(self._deviation(phi))
             if "memory" in self.terms:
-                coarse.append(nearest_distance(local_average(phi), self.memory, self.memory_sq, self.memory_centre))
+                coarse.append(self._memory_distance(phi))
             if "adversarial" in self.terms:
                 coarse.append(self.feature_critic(phi))
             maps.append(F.interpolate(torch.cat(coarse, 1), size=size, mode="bilinear", align_corners=False))
         return self._smooth(torch.cat(maps, 1)), fx
+
+    def _memory_distance(self, phi: torch.Tensor) -> torch.Tensor:
+        """(B, F, h, w) features -> (B, 1, h, w): each patch's distance to the nearest memory entry; a pooled
+        memory (`memory_pool` 2) searches every 8 px and its map is brought back to the feature grid."""
+        dist = nearest_distance(
+            memory_features(phi, self.cfg.memory_pool), self.memory, self.memory_sq, self.memory_centre
+        )
+        if self.cfg.memory_pool > 1:
+            dist = F.interpolate(dist, size=phi.shape[-2:], mode="bilinear", align_corners=False)
+        return dist
 
     def _deviation(self, feats: torch.Tensor) -> torch.Tensor:
         """(B, F, h, w) features -> (B, 1, h, w): the mean squared standardised distance to the known-good
@@ -213,7 +223,7 @@ class ScoringGraph(nn.Module):
             self.feature_mean.copy_(feats.mean(0))
             self.feature_std.copy_(_shrunk_std(feats))
         if "memory" in self.terms:
-            patches = patch_features(feats, batch)
+            patches = patch_features(feats, batch, pool=self.cfg.memory_pool)
             memory = build_memory(patches, self.cfg.memory_size, seed=seed)
             if len(memory) < self.cfg.memory_size:  # fewer patches than places: repeat, the minimum is the same
                 memory = memory[torch.arange(self.cfg.memory_size) % len(memory)]

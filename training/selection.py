@@ -1,12 +1,14 @@
-"""Which terms enter a model's heatmap, with which weights and which residual shift: chosen at train time from
-synthetic defects pasted into held-out known-good images (`synthetic.py`), never from a labelled holdout.
+"""Which terms enter a model's heatmap, with which weights, which residual shift and which memory stride: chosen at
+train time from synthetic defects pasted into held-out known-good images (`synthetic.py`), never from a labelled
+holdout.
 
 Every candidate term is computed once on the held-out known-good images and on their defective copies, each
 standardised as the final model will standardise it; every combination of weights is then scored by how well it
 separates the two (image AUROC, scikit-learn); how well its heatmap finds the pasted masks (pixel AUROC on a fixed
 sample of pixels) only breaks ties, e.g. when several combinations separate the images perfectly. A share of the
 pixel AUROC in the criterion favoured terms whose maps are sharp at pasted masks over those that rank real defective
-images (README, levers). The combinations: every set of terms at weight 1 (one residual shift at most), each set of
+images (README, levers). The combinations: every set of terms at weight 1 (one residual shift and one memory stride
+at most), each set of
 two or more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then the best set with
 each of its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into the
 bundle.
@@ -19,7 +21,7 @@ import itertools
 
 import numpy as np
 import torch
-from knowngood.training.config import COMBINE_RULES, TERM_FIELDS, ModelConfig
+from knowngood.training.config import COMBINE_RULES, MEMORY_POOLS, TERM_FIELDS, ModelConfig
 from knowngood.training.scoring import ScoringGraph
 from knowngood.training.synthetic import paste_defects
 from sklearn.metrics import roc_auc_score
@@ -27,23 +29,25 @@ from sklearn.metrics import roc_auc_score
 PIXEL_SAMPLE = 20000
 TOLERANCE = 0.005  # image AUROC differences below this count as ties (see _ranked)
 SYNTHETIC_COPIES = 5  # defective copies of each held-out image, each of another kind (synthetic.KINDS)
-# candidate name -> the settings it stands for; the two residual shifts are alternatives of one term
-OTHERS = {
-    "critic": "kappa",
-    "perceptual": "perceptual",
-    "memory": "memory",
-    "adversarial": "adversarial",
-}  # candidate name -> weight field
+OTHERS = {"critic": "kappa", "perceptual": "perceptual", "adversarial": "adversarial"}  # candidate -> weight field
 
 
-def candidates(shifts: tuple[int, ...]) -> dict[str, dict]:
-    """Candidate name -> the settings it stands for; the image residual at each shift is an alternative."""
+def candidates(shifts: tuple[int, ...], memory_size: int = ModelConfig.memory_size) -> dict[str, dict]:
+    """Candidate name -> the settings it stands for. Alternatives of one term are named term@setting: the image
+    residual at each shift (pixel@0, pixel@1) and the memory at each patch stride in px (memory@4, memory@8; the
+    coarser one holds pool² x `memory_size` entries, as many multiply-adds per image as the finer one)."""
     out = {f"pixel@{s}": {"pixel": 1.0, "residual_shift": s} for s in shifts}
-    return out | {name: {field: 1.0} for name, field in OTHERS.items()}
+    out |= {name: {field: 1.0} for name, field in OTHERS.items() if field != "adversarial"}
+    for pool in MEMORY_POOLS:
+        size = min(65536, pool * pool * memory_size)
+        out[f"memory@{4 * pool}"] = {"memory": 1.0, "memory_pool": pool, "memory_size": size}
+    return out | {"adversarial": {"adversarial": 1.0}}
 
 
 def _field(name: str) -> str:
-    return "pixel" if name.startswith("pixel@") else OTHERS[name]
+    """The weight field of a candidate: term@setting -> term."""
+    term = name.split("@")[0]
+    return term if "@" in name else OTHERS[name]
 
 
 REFERENCE = ("feature_mean", "feature_std", "memory", "memory_sq", "memory_centre")  # buffers fitted by `fit_features`
@@ -56,11 +60,14 @@ class Choice:
     graphs: dict[str, ScoringGraph] = dataclasses.field(default_factory=dict, repr=False)
 
     def adopt_reference(self, graph: ScoringGraph) -> None:
-        """Copies the pretrained terms' fitted reference (statistics, memory) from the candidates into `graph`."""
+        """Copies the pretrained terms' fitted reference (statistics, memory) from the candidates into `graph`; the
+        memory from the candidate of the graph's own stride (memory@4 and memory@8 both hold one)."""
         own = dict(graph.named_buffers())
+        stride = (graph.cfg.memory_pool, graph.cfg.memory_size)
         for candidate in self.graphs.values():
+            same_stride = (candidate.cfg.memory_pool, candidate.cfg.memory_size) == stride
             for name, buf in candidate.named_buffers():
-                if name in REFERENCE and name in own:
+                if name in REFERENCE and name in own and (same_stride or not name.startswith("memory")):
                     own[name].copy_(buf)
 
 
@@ -87,7 +94,7 @@ def candidate_graphs(
     """One scoring graph per candidate term (sharing the trained nets and the pretrained net); a term whose
     weight is 0 in `base` is not a candidate, nor the adversarial term without a trained feature critic."""
     out = {}
-    for name, settings in candidates(shifts).items():
+    for name, settings in candidates(shifts, base.memory_size).items():
         if getattr(base, _field(name)) <= 0 or (name == "adversarial" and feature_critic is None):
             continue  # left out by the caller, or not trained
         cfg = _with_weights(base, **settings)
@@ -131,17 +138,17 @@ def _image_scores(
 
 
 def _subsets(names: list[str]):
-    """(rule, weights): every non-empty set of terms at weight 1, with at most one residual shift of the image
-    residual; a single term under the maximum only (both rules give the same map), two or more under each rule."""
-    pixel = [n for n in names if n.startswith("pixel@")]
-    others = [n for n in names if not n.startswith("pixel@")]
-    for pix in [[]] + [[p] for p in pixel]:
-        for k in range(len(others) + 1):
-            for chosen in itertools.combinations(others, k):
-                terms = [*pix, *chosen]
-                rules = COMBINE_RULES if len(terms) > 1 else COMBINE_RULES[:1]
-                for rule in rules if terms else ():
-                    yield rule, dict.fromkeys(terms, 1.0)
+    """(rule, weights): every non-empty set of terms at weight 1, with at most one of each term's alternatives
+    (term@setting: one residual shift, one memory stride); a single term under the maximum only (both rules give
+    the same map), two or more under each rule."""
+    groups: dict[str, list[str]] = {}
+    for n in names:
+        groups.setdefault(n.split("@")[0], []).append(n)
+    for picks in itertools.product(*([None, *alternatives] for alternatives in groups.values())):
+        terms = [n for n in picks if n is not None]
+        rules = COMBINE_RULES if len(terms) > 1 else COMBINE_RULES[:1]
+        for rule in rules if terms else ():
+            yield rule, dict.fromkeys(terms, 1.0)
 
 
 def _halved(rule: str, best: dict[str, float]):
@@ -211,7 +218,7 @@ def choose_terms(
     settings = {"combine": rule}
     for name, w in best.items():
         if w > 0:
-            settings.update(candidates(shifts)[name], **{_field(name): w})
+            settings.update(candidates(shifts, base.memory_size)[name], **{_field(name): w})
     cfg = _with_weights(base, **settings)
     evidence = {
         "method": "synthetic defects (CutPaste rectangles and scars, Perlin-noise blobs and areas, cracks, cut-off "

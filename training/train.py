@@ -167,8 +167,9 @@ def scale_note(images: list, model: ModelConfig) -> str | None:
 
 def continued_config(start: Detector, *, size: int | None, tile: int | None, name: str) -> ModelConfig:
     """The model settings of a run continuing from the bundle `start` (`train --from`, file `name`): the bundle's
-    preprocessing and network settings, which its weights fit, with the terms' weights and the residual shift back
-    at their defaults, to be chosen again on the new images. A --size or --tile other than the bundle's is refused."""
+    preprocessing and network settings, which its weights fit, with the terms' weights, the residual shift and the
+    memory's stride back at their defaults, to be chosen again on the new images. A --size or --tile other than the
+    bundle's is refused."""
     side, own_tile = max(start.cfg.shape), start.cfg.tile
     if size is not None and size != side:
         raise BadConfig(
@@ -181,7 +182,8 @@ def continued_config(start: Detector, *, size: int | None, tile: int | None, nam
             f"--tile {tile} conflicts with --from {name}, which inspects {has}: a continued model keeps its "
             "bundle's settings (leave out --tile, or train afresh without --from)"
         )
-    defaults = {field: getattr(ModelConfig, field) for field in (*TERM_FIELDS, "residual_shift")}
+    chosen = (*TERM_FIELDS, "residual_shift", "memory_pool", "memory_size")  # what the choice of terms sets
+    defaults = {field: getattr(ModelConfig, field) for field in chosen}
     return dataclasses.replace(start.cfg, **defaults)
 
 

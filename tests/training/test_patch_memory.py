@@ -16,6 +16,7 @@ from knowngood.training.memory import (
     build_memory,
     greedy_coreset,
     local_average,
+    memory_features,
     nearest_distance,
     patch_features,
 )
@@ -92,3 +93,35 @@ def test_patch_features_in_batches_equal_the_whole_at_once():
     whole = as_patches(local_average(phi))
     assert torch.equal(patch_features(phi, batch=3), whole)
     assert torch.equal(patch_features(phi, batch=32), whole)
+
+
+def test_a_pooled_patch_is_the_mean_of_two_by_two_locally_averaged_cells():
+    """memory_pool 2: each patch averages a 2 x 2 block of the 3 x 3-averaged map (a patch every 8 px)."""
+    phi = torch.randn(3, 4, 6, 8, generator=torch.Generator().manual_seed(5))
+    la = local_average(phi).numpy()
+    blocks = la.reshape(3, 4, 3, 2, 4, 2).mean((3, 5))  # (N, C, 3, 4): numpy's own 2 x 2 block means
+    assert np.allclose(memory_features(phi, 2).numpy(), blocks, atol=1e-6)
+    expect = blocks.transpose(0, 2, 3, 1).reshape(-1, 4)
+    assert np.allclose(patch_features(phi, batch=2, pool=2).numpy(), expect, atol=1e-6)
+
+
+def test_the_pooled_memory_term_is_the_distance_to_the_nearest_pooled_patch():
+    """The graph's memory term at memory_pool 2, before it is brought back to the feature grid, against scipy's
+    brute-force distance from each pooled patch to the memory."""
+    from knowngood.training.config import ModelConfig
+    from knowngood.training.nets import build
+    from knowngood.training.perceptual import load_pretrained
+    from knowngood.training.scoring import ScoringGraph
+
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, memory_size=32, memory_pool=2, adversarial=0)
+    graph = ScoringGraph(cfg, *build(cfg), perceptual=load_pretrained())
+    x = torch.rand(6, 1, 32, 32, generator=torch.Generator().manual_seed(1))
+    graph.fit_features(x[:4])
+    phi = graph.pretrained_features(x[4:])  # (2, F, 8, 8)
+    memory = (graph.memory + graph.memory_centre).numpy()
+    q = as_patches(memory_features(phi, 2)).numpy()  # (2 * 4 * 4, F)
+    want = cdist(q, memory).min(1).reshape(2, 4, 4)
+    got = nearest_distance(memory_features(phi, 2), graph.memory, graph.memory_sq, graph.memory_centre)
+    assert np.allclose(got[:, 0].numpy(), want, atol=1e-3)
+    full = graph._memory_distance(phi)  # the term as the graph computes it: back on the 8 x 8 feature grid
+    assert full.shape == (2, 1, 8, 8) and np.isclose(float(full.max()), want.max(), rtol=0.05)

@@ -85,6 +85,29 @@ def test_onnx_runtime_gives_the_same_scores(tiny_bundle, tiny_good_images, rule)
         assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=2e-3)
 
 
+def test_the_coarser_memory_runs_the_same_under_onnx_runtime(tiny_good_images):
+    # the memory searched every 8 px (memory_pool 2: pooled features, distance, map brought back to the grid)
+    # exports with the rest of the graph; ONNX Runtime against eager PyTorch, as above
+    from knowngood.training.config import ModelConfig
+    from knowngood.training.detector import Detector
+    from knowngood.training.perceptual import load_pretrained
+
+    cfg = ModelConfig(size=32, channels=1, width=8, z_channels=4, memory_size=64, memory_pool=2, adversarial=0)
+    graph = bundle.new_graph(cfg, load_pretrained())
+    x = torch.from_numpy(np.stack(tiny_good_images))
+    graph.fit_features(x[:12])
+    graph.fit_standardisation(x)
+    assert graph.memory.shape[0] == 64 and graph.memory.abs().sum() > 0
+    det = Detector(cfg=cfg, graph=graph, threshold=3.0)
+    # images the memory was not built from, as in use (an image's own patches sit at distance ~0, where the square
+    # root magnifies float32 rounding: the test above allows for that)
+    eager = det.inspect(tiny_good_images[12:18])
+    fast = dataclasses.replace(det).use_onnx(threads=1).inspect(tiny_good_images[12:18])
+    for a, b in zip(eager, fast):
+        assert b.score == pytest.approx(a.score, rel=1e-4, abs=1e-5)
+        assert np.allclose(a.heatmap, b.heatmap, rtol=1e-4, atol=2e-3)
+
+
 def test_scoring_pass_embedding_equals_the_critic_pooled_features(tiny_bundle, tiny_good_images):
     # the drift window's features come from the scoring pass; they must be `embed`'s, eager and under ONNX Runtime
     det, _ = bundle.load(tiny_bundle)

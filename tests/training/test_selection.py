@@ -16,7 +16,15 @@ from knowngood.training.config import ModelConfig
 from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import ScoringGraph
-from knowngood.training.selection import SYNTHETIC_COPIES, TOLERANCE, _image_scores, _ranked, _subsets, choose_terms
+from knowngood.training.selection import (
+    SYNTHETIC_COPIES,
+    TOLERANCE,
+    _image_scores,
+    _ranked,
+    _subsets,
+    candidates,
+    choose_terms,
+)
 from knowngood.training.synthetic import _crack, _patch, _region, paste_defects, perlin, perlin_mask
 from scipy import ndimage
 
@@ -117,6 +125,24 @@ def test_every_set_of_two_or_more_terms_is_a_candidate_under_both_rules():
     assert len(several) == 2 * 7  # {critic, memory}, and each shift with one of the 3 non-empty sets of the others
 
 
+def test_one_memory_stride_at_most_in_a_set():
+    combos = list(_subsets(["pixel@0", "pixel@1", "critic", "memory@4", "memory@8"]))
+    sets = [tuple(sorted(w)) for _, w in combos]
+    assert not any("memory@4" in t and "memory@8" in t for t in sets)
+    assert not any("pixel@0" in t and "pixel@1" in t for t in sets)
+    assert ("critic", "memory@8", "pixel@1") in sets and ("memory@4",) in sets
+    # (none or one of 2 shifts) x (critic or not) x (none or one of 2 strides), less the empty set: 17 sets,
+    # 5 single terms (max only) and 12 of two or more (both rules)
+    assert len(set(sets)) == 17 and len(combos) == 5 + 2 * 12
+
+
+def test_the_coarser_memory_holds_four_times_the_entries_for_the_same_search():
+    cand = candidates((0, 1), memory_size=4096)
+    assert cand["memory@4"] == {"memory": 1.0, "memory_pool": 1, "memory_size": 4096}
+    assert cand["memory@8"] == {"memory": 1.0, "memory_pool": 2, "memory_size": 16384}
+    assert candidates((0,), memory_size=32768)["memory@8"]["memory_size"] == 65536  # ModelConfig's bound
+
+
 @pytest.mark.parametrize("rule", ["max", "mean"])
 def test_the_choice_scores_as_the_scoring_graph_does(rule):
     """`_image_scores` restates `ScoringGraph.heat_from` on maps already standardised; both rules must agree."""
@@ -140,13 +166,23 @@ def test_choice_is_recorded_and_no_single_term_beats_it():
         cfg, build(cfg), load_pretrained(), fit_x=x[:12], std_x=x[12:18], good_x=x[18:], shifts=(0, 1), seed=0
     )
     ev = choice.evidence
-    assert set(ev["alone"]) == {"pixel@0", "pixel@1", "critic", "perceptual", "memory"}  # no feature critic given
+    # no feature critic given: no adversarial term
+    assert set(ev["alone"]) == {"pixel@0", "pixel@1", "critic", "perceptual", "memory@4", "memory@8"}
     assert ev["images"] == {"good": 6, "synthetic": 6 * SYNTHETIC_COPIES}
     chosen = {k for k, w in ev["chosen"].items() if w > 0}
     assert chosen and not {"pixel@0", "pixel@1"} <= chosen  # one residual shift at most
+    assert not {"memory@4", "memory@8"} <= chosen  # one memory stride at most
     assert ev["combine"] == choice.cfg.combine and ev["combine"] in ("max", "mean")
-    best_alone = max(a["image_auroc"] + 0.25 * a["pixel_auroc"] for a in ev["alone"].values())
-    assert ev["image_auroc"] + 0.25 * ev["pixel_auroc"] >= best_alone - TOLERANCE
+    assert ev["image_auroc"] >= max(a["image_auroc"] for a in ev["alone"].values()) - TOLERANCE
     weights = {"pixel": choice.cfg.pixel, "critic": choice.cfg.kappa, "memory": choice.cfg.memory}
-    assert (weights["memory"] > 0) == ("memory" in chosen) and choice.cfg.adversarial == 0
+    assert (weights["memory"] > 0) == any(c.startswith("memory@") for c in chosen) and choice.cfg.adversarial == 0
     assert (weights["pixel"] > 0) == any(c.startswith("pixel@") for c in chosen)
+    if "memory@8" in chosen:
+        assert (choice.cfg.memory_pool, choice.cfg.memory_size) == (2, 4 * 256)
+    # the final graph takes the memory of its own stride from the candidates: each stride's, never the other's
+    for name, pool, size in (("memory@4", 1, 256), ("memory@8", 2, 1024)):
+        cfg_m = dataclasses.replace(choice.cfg, memory=1.0, memory_pool=pool, memory_size=size)
+        g = choice.graphs[name]
+        graph = ScoringGraph(cfg_m, g.encoder, g.generator, g.critic, perceptual=g.perceptual)
+        choice.adopt_reference(graph)
+        assert torch.equal(graph.memory, choice.graphs[name].memory) and graph.memory.abs().sum() > 0
