@@ -8,10 +8,9 @@ separates the two (image AUROC, scikit-learn); how well its heatmap finds the pa
 sample of pixels) only breaks ties, e.g. when several combinations separate the images perfectly. A share of the
 pixel AUROC in the criterion favoured terms whose maps are sharp at pasted masks over those that rank real defective
 images (README, levers). The combinations: every set of terms at weight 1 (one residual shift and one memory stride
-at most), each set of
-two or more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then the best set with
-each of its terms at half weight. The winner and the evidence (each term alone, the best combinations) go into the
-bundle.
+at most), each set of two or more under both rules of `ScoringGraph.heat_from` (the maps' maximum, their mean), then
+the best set with each of its terms at half weight. The winner and the evidence (each term alone, the best
+combinations) go into the bundle.
 """
 
 from __future__ import annotations
