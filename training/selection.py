@@ -28,7 +28,7 @@ from sklearn.metrics import roc_auc_score
 PIXEL_SAMPLE = 20000
 TOLERANCE = 0.005  # image AUROC differences below this count as ties (see _ranked)
 SYNTHETIC_COPIES = 5  # defective copies of each held-out image, each of another kind (synthetic.KINDS)
-OTHERS = {"critic": "kappa", "perceptual": "perceptual", "adversarial": "adversarial"}  # candidate -> weight field
+FIELDS = {"critic": "kappa"}  # a candidate term whose weight field in ModelConfig has another name
 
 
 def candidates(shifts: tuple[int, ...], memory_size: int = ModelConfig.memory_size) -> dict[str, dict]:
@@ -36,7 +36,7 @@ def candidates(shifts: tuple[int, ...], memory_size: int = ModelConfig.memory_si
     residual at each shift (pixel@0, pixel@1) and the memory at each patch stride in px (memory@4, memory@8; the
     coarser one holds pool² x `memory_size` entries, as many multiply-adds per image as the finer one)."""
     out = {f"pixel@{s}": {"pixel": 1.0, "residual_shift": s} for s in shifts}
-    out |= {name: {field: 1.0} for name, field in OTHERS.items() if field != "adversarial"}
+    out |= {"critic": {"kappa": 1.0}, "perceptual": {"perceptual": 1.0}}
     for pool in MEMORY_POOLS:
         size = min(65536, pool * pool * memory_size)
         out[f"memory@{4 * pool}"] = {"memory": 1.0, "memory_pool": pool, "memory_size": size}
@@ -44,9 +44,9 @@ def candidates(shifts: tuple[int, ...], memory_size: int = ModelConfig.memory_si
 
 
 def _field(name: str) -> str:
-    """The weight field of a candidate: term@setting -> term."""
+    """The weight field of a candidate: term@setting -> term, critic -> kappa."""
     term = name.split("@")[0]
-    return term if "@" in name else OTHERS[name]
+    return FIELDS.get(term, term)
 
 
 REFERENCE = ("feature_mean", "feature_std", "memory", "memory_sq", "memory_centre")  # buffers fitted by `fit_features`
