@@ -17,7 +17,7 @@ from knowngood.training.detector import Detector
 from knowngood.training.errors import BadBundle, BadConfig, BadImage
 from knowngood.training.heatmap import heatmap_names, heatmap_png_bytes
 from knowngood.training.selection import term_summary
-from knowngood.training.train import continued_config, scale_note, train_bundle
+from knowngood.training.train import auto_size, continued_config, median_side, scale_note, train_bundle
 from knowngood.training.tuning import threshold_for_catch, threshold_for_false_reject
 
 
@@ -58,6 +58,15 @@ def train(args) -> int:
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
     if start is None:
         model = dataclasses.replace(model, channels=good.channels)
+    if start is None and args.size is None and not args.tile:  # large images: a working size nearer their own
+        size = auto_size(good.images)
+        if size != model.size:
+            model = dataclasses.replace(model, size=size)
+            print(
+                f"knowngood: working size {size} px for images of about {median_side(good.images)} px on the "
+                "long side (--size sets it)",
+                file=sys.stderr,
+            )
     note = scale_note(good.images, model)
     if note:
         print(f"knowngood: note: {note}", file=sys.stderr)

@@ -146,6 +146,25 @@ def _sample(x, n: int, seed: int):
 
 SCALE_NOTE_RATIO = 2.5  # native long side / working long side from which `scale_note` speaks
 SMALLEST_SEEN_PX = 2  # working-size px a defect needs to be seen at all (README, Limits)
+AUTO_SIZE_MAX = 256  # the largest working size `auto_size` picks: 4x the default's cost per image, not more
+
+
+def median_side(images: list) -> int:
+    """The median native long side of images (C, H, W), px."""
+    sides = sorted(max(im.shape[-2:]) for im in images)
+    return int(sides[len(sides) // 2])
+
+
+def auto_size(images: list, default: int = ModelConfig.size) -> int:
+    """The working long side when `train` is not given --size or --tile: the default for images up to
+    `SCALE_NOTE_RATIO` times it (elpv's 300 px cells stay at 128 px), else the smallest multiple of 16 that shrinks
+    the median native long side at most that much (a 640 px image: 256 px, so a 10 px defect is still 4 px), up to
+    `AUTO_SIZE_MAX`. Never more than four times the smallest image's short side (`min_side_for`)."""
+    if not images:
+        return default
+    wanted = int(np.ceil(median_side(images) / SCALE_NOTE_RATIO / 16)) * 16
+    smallest = min(min(im.shape[-2:]) for im in images)
+    return int(max(default, min(wanted, AUTO_SIZE_MAX, 4 * smallest // 16 * 16)))
 
 
 def scale_note(images: list, model: ModelConfig) -> str | None:
@@ -153,8 +172,7 @@ def scale_note(images: list, model: ModelConfig) -> str | None:
     native long side against the working long side, and the smallest defect, in native px, still seen."""
     if model.tile or not images:
         return None
-    sides = sorted(max(im.shape[-2:]) for im in images)
-    native = sides[len(sides) // 2]
+    native = median_side(images)
     ratio = native / model.size
     if ratio < SCALE_NOTE_RATIO:
         return None

@@ -17,7 +17,7 @@ from knowngood.demo_parts.scenario import image_rng
 from knowngood.training.config import ModelConfig, TrainConfig
 from knowngood.training.data import ImageSet
 from knowngood.training.detector import tile_boxes
-from knowngood.training.train import scale_note, train_bundle
+from knowngood.training.train import auto_size, scale_note, train_bundle
 from PIL import Image
 
 SIDE = 512
@@ -91,10 +91,51 @@ def test_train_warns_when_small_defects_would_vanish(tmp_path, capsys):
     rng = np.random.default_rng(0)
     for i in range(12):
         Image.fromarray(rng.integers(90, 160, (SIDE, SIDE), dtype=np.uint8)).save(good / f"{i:02d}.png")
-    assert main(["train", str(good), "-o", str(tmp_path / "m.kgm"), "--steps", "2", "--quiet"]) == 0
+    args = ["train", str(good), "-o", str(tmp_path / "m.kgm"), "--steps", "2", "--quiet", "--size", "128"]
+    assert main(args) == 0
     err = capsys.readouterr().err
     assert f"about {SIDE} px on the long side and are seen at 128 px (4.0x smaller)" in err
     assert "--tile 128" in err and "--size 256" in err
     # at the camera's scale (tiled) or at a working size near the native one, nothing to say
     assert scale_note([np.zeros((1, SIDE, SIDE), np.float32)], ModelConfig(tile=TILE)) is None
     assert scale_note([np.zeros((1, SIDE, SIDE), np.float32)], ModelConfig(size=256)) is None
+
+
+def _shapes(*sides) -> list[np.ndarray]:
+    return [np.zeros((1, h, w), np.float32) for h, w in sides]
+
+
+def test_auto_size_keeps_small_images_at_the_default_and_brings_large_ones_nearer_their_scale():
+    """Without --size, images up to 2.5x the default keep it (elpv's 300 px cells: 128 px) and larger ones get the
+    smallest multiple of 16 that shrinks them at most 2.5x, up to 256 px; never over 4x the smallest short side."""
+    assert auto_size(_shapes((300, 300))) == 128
+    assert auto_size(_shapes((320, 320))) == 128  # exactly 2.5x
+    assert auto_size(_shapes((330, 330))) == 144  # 132 px rounded up to a multiple of 16
+    assert auto_size(_shapes((480, 640), (480, 640), (640, 480))) == 256  # the long side, whichever it is
+    assert auto_size(_shapes((500, 500), (500, 500), (2000, 2000))) == 208  # the median, not the largest
+    assert auto_size(_shapes((3000, 4000))) == 256  # capped: larger images want --tile (`scale_note` says so)
+    assert auto_size(_shapes((640, 640), (640, 640), (40, 40))) == 160  # a 40 px image allows 160 px at most
+    assert auto_size([]) == 128
+    # each returned size is one the model accepts
+    for side in range(16, 1200, 37):
+        ModelConfig(size=auto_size(_shapes((side, side))))
+
+
+def test_train_without_size_works_nearer_the_images_scale(tmp_path, capsys):
+    """`train` on 512 px images without --size works at 208 px (512 / 2.5, rounded up to 16), says so, and has no
+    shrinking to warn of; --size keeps the user's choice (the test above)."""
+    from knowngood.training import bundle
+    from knowngood.training.cli import main
+
+    good = tmp_path / "good"
+    good.mkdir()
+    rng = np.random.default_rng(0)
+    for i in range(12):
+        Image.fromarray(rng.integers(90, 160, (SIDE, SIDE), dtype=np.uint8)).save(good / f"{i:02d}.png")
+    out = tmp_path / "m.kgm"
+    assert main(["train", str(good), "-o", str(out), "--steps", "2", "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert f"working size 208 px for images of about {SIDE} px" in err
+    assert "smaller)" not in err
+    det = bundle.load(out)[0]
+    assert det.cfg.shape == (208, 208)
