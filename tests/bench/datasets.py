@@ -33,10 +33,18 @@ Splits (fixed; every method sees exactly the same images):
   knowngood trains a tiled model on it (`Dataset.tile` = 128: 128 px tiles, the camera's scale); the peers see
   the whole image at 128 px, as they see every dataset.
 
+- **demo-casting-640**: the casting at 640 x 640 px with grains and defects four times their 128 px render's pixel
+  sizes (`render_large(..., grain_scale=4)`): defects of about 10-30 px in a 640 px image, the case of a camera
+  image that the default 128 px working size shrinks five times. 120 known-good training images, 30 good and 40
+  defective (8 per defect kind) test images, with masks; rendered once, keyed like the large set. knowngood trains
+  with `train`'s default working size for these images (`train.auto_size`: 256 px); the ablation adds the same
+  recipe at 128 px (what the working size buys). The peers see 128 px, as everywhere.
+
   | name | train good | test good | test defective | side | knowngood |
   | --- | --- | --- | --- | --- | --- |
   | demo-bracket, demo-weave, demo-casting | 240 | 60 | 60 (5 defect kinds x 12) | 128 | whole image |
   | demo-casting-large | 60 | 20 | 20 (5 x 4) | 1024 | 128 px tiles |
+  | demo-casting-640 | 120 | 30 | 40 (5 x 8) | 640 | whole image at 256 px |
 """
 
 from __future__ import annotations
@@ -56,10 +64,13 @@ ELPV = {
 }
 DEMO = {"demo-bracket": "bracket", "demo-weave": "weave", "demo-casting": "casting"}
 LARGE = "demo-casting-large"
-NAMES = (*ELPV, *DEMO, LARGE)
+MID = "demo-casting-640"
+NAMES = (*ELPV, *DEMO, MID, LARGE)
 LARGE_SIZE = 1024
 LARGE_TILE = 128  # the 128 px render's pixel scale: a tile sees what a whole 128 px image shows
 LARGE_COUNTS = {"train": 60, "good": 20, "per_defect": 4}
+MID_SIZE, MID_GRAIN = 640, 4.0
+MID_COUNTS = {"train": 120, "good": 30, "per_defect": 8}
 _LARGE_KEY = 1024  # keeps the large images' random streams apart from the 128 px scenario's
 ELPV_SIZE = 128
 TRAIN_SHARE = 0.8
@@ -103,6 +114,8 @@ def load(name: str, cache: Path) -> Dataset:
         return load_demo(name, cache)
     if name == LARGE:
         return load_large(cache)
+    if name == MID:
+        return load_mid(cache)
     raise KeyError(f"unknown dataset {name!r}; expected one of {', '.join(NAMES)}")
 
 
@@ -223,13 +236,16 @@ def _save_png(path: Path, array: np.ndarray) -> None:
     Image.fromarray(array).save(path, format="PNG")
 
 
-def large_root(cache: Path, *, seed: int = 0, size: int = LARGE_SIZE, counts: dict = LARGE_COUNTS) -> Path:
-    """Renders the large casting set into a cache folder named for its seed, size and counts, once (the layout of
-    `render_scenario`'s part-kind folders); later calls reuse it. About a second per 1024 px image."""
+def large_root(
+    cache: Path, *, seed: int = 0, size: int = LARGE_SIZE, counts: dict = LARGE_COUNTS, grain_scale: float = 1.0
+) -> Path:
+    """Renders the large casting set into a cache folder named for its seed, size, counts and grain scale, once
+    (the layout of `render_scenario`'s part-kind folders); later calls reuse it. About a second per 1024 px image."""
     from knowngood.demo_parts import DEFECT_KINDS, render_large
 
     n_train, n_good, n_bad = counts["train"], counts["good"], counts["per_defect"]
-    root = Path(cache) / f"casting-large-{size}px-seed{seed}-{n_train}-{n_good}-{n_bad}"
+    grains = "" if grain_scale == 1.0 else f"-grain{grain_scale:g}"
+    root = Path(cache) / f"casting-large-{size}px{grains}-seed{seed}-{n_train}-{n_good}-{n_bad}"
     done = root / ".complete"
     if done.exists():
         return root
@@ -237,7 +253,7 @@ def large_root(cache: Path, *, seed: int = 0, size: int = LARGE_SIZE, counts: di
     jobs += [("holdout/good", None, 1, 0, i) for i in range(n_good)]
     jobs += [(defect, defect, 2, d, i) for d, defect in enumerate(DEFECT_KINDS["casting"]) for i in range(n_bad)]
     for folder, defect, split, d, i in jobs:
-        out = render_large("casting", defect, large_rng(seed, split, d, i, size), size)
+        out = render_large("casting", defect, large_rng(seed, split, d, i, size), size, grain_scale=grain_scale)
         if defect is None:
             _save_png(root / folder / f"{i:04d}.png", out.image)
         else:
@@ -251,6 +267,13 @@ def load_large(cache: Path, *, size: int = LARGE_SIZE, counts: dict = LARGE_COUN
     train, test, labels, masks = _load_kind(large_root(cache, size=size, counts=counts))
     source = f"demo_parts.render_large casting, {size} px, seed 0"
     return Dataset(LARGE, train, test, labels, masks, source, tile=LARGE_TILE)
+
+
+def load_mid(cache: Path) -> Dataset:
+    root = large_root(cache, size=MID_SIZE, counts=MID_COUNTS, grain_scale=MID_GRAIN)
+    train, test, labels, masks = _load_kind(root)
+    source = f"demo_parts.render_large casting, {MID_SIZE} px, grain scale {MID_GRAIN:g}, seed 0"
+    return Dataset(MID, train, test, labels, masks, source)
 
 
 def native_images(name: str, cache: Path, split: str, n: int | None = None) -> list[np.ndarray]:

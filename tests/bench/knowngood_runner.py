@@ -13,7 +13,7 @@ import torch
 from knowngood.training.config import ModelConfig, TrainConfig
 from knowngood.training.data import ImageSet
 from knowngood.training.detector import Detector
-from knowngood.training.train import train_bundle
+from knowngood.training.train import auto_size, train_bundle
 
 SIZE = 128
 
@@ -46,10 +46,14 @@ def train(
     channels: int = 1,
     seed: int = 0,
     tile: int = 0,
+    size: int | None = None,
 ) -> KnowngoodRun:
     """Trains on known-good images (C, H, W) within `minutes` (or exactly `steps` steps when minutes is None);
-    `tile` > 0: a tiled model, tiles of that many native px at the working size `SIZE`."""
-    model = ModelConfig(size=SIZE, channels=channels, tile=tile)
+    `tile` > 0: a tiled model, tiles of that many native px at the working size `SIZE`. A whole-image model works
+    at `size`, or (None) at `train`'s default for these images (`auto_size`: 128 px unless they are large)."""
+    if tile:
+        size = SIZE
+    model = ModelConfig(size=auto_size(images) if size is None else size, channels=channels, tile=tile)
     tcfg = TrainConfig(steps=steps or 10**9, minutes=minutes or 0.0, seed=seed)
     start = time.monotonic()
     det = train_bundle(

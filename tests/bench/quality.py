@@ -1,6 +1,7 @@
 """Quality section: knowngood and the peers on one dataset, every method on exactly the same images, and the
-ablation: the same trained nets scored with other terms (`ablation.py`) and, on a dataset knowngood tiles, the
-same recipe trained on the whole image at 128 px ("knowngood-128px", what tiling buys).
+ablation: the same trained nets scored with other terms (`ablation.py`) and, on a dataset knowngood tiles or sees
+at more than 128 px (`train`'s default for large images), the same recipe trained on the whole image at 128 px
+("knowngood-128px", what tiling or the working size buys).
 
 The peers see every image resized to 128 px. knowngood scores a whole-image model on the same kind of batch (its
 working shape) and a tiled model through `Detector.score_images` on the native images; either way its heatmaps
@@ -20,6 +21,7 @@ import torch
 from knowngood.training import metrics
 from knowngood.training.data import to_model_input
 from knowngood.training.scoring import TERMS, resize_maps, term_weights
+from knowngood.training.train import auto_size
 
 from tests.bench import ablation, knowngood_runner
 from tests.bench.datasets import Dataset
@@ -28,8 +30,8 @@ from tests.bench.peers import AutoEncoderPeer, simple_peers
 SIZE = knowngood_runner.SIZE
 METHODS = ("knowngood", "patch-memory", "nearest-neighbour", "pca", "autoencoder", "mean-grey")
 PEERS = METHODS[1:]
-# the ablation section: the same trained nets with other terms (ablation.py), and on a tiled dataset the same
-# recipe trained on the whole image at 128 px
+# the ablation section: the same trained nets with other terms (ablation.py), and on a tiled dataset or one seen
+# at more than 128 px the same recipe trained on the whole image at 128 px
 TILING_ROW = "knowngood-128px"
 
 
@@ -52,14 +54,18 @@ def _row(ds: Dataset, scores: np.ndarray, maps, **extra) -> dict:
     return {k: round(v, 4) if isinstance(v, float) else v for k, v in row.items()}
 
 
-def _train(ds: Dataset, models: dict, key: str, tile: int, minutes: float, bundle_dir: Path, log):
+def _train(
+    ds: Dataset, models: dict, key: str, tile: int, minutes: float, bundle_dir: Path, log, size: int | None = None
+):
+    """knowngood trained on ds (cached in `models` under `key`): tiled, or whole images at `size` (None: `train`'s
+    default for them, `auto_size`)."""
     if key not in models:
-        how = f"{tile} px tiles" if tile else f"whole images at {SIZE} px"
+        how = f"{tile} px tiles" if tile else f"whole images at {size or auto_size(ds.train)} px"
         log(f"[{ds.name}] {key}: training for {minutes:g} min on {len(ds.train)} known-good images, {how}")
         bundle_dir.mkdir(parents=True, exist_ok=True)
         stem = ds.name if key == "knowngood" else f"{ds.name}-{key.removeprefix('knowngood-')}"
         models[key] = knowngood_runner.train(
-            ds.train, bundle_dir / f"{stem}.kgm", minutes=minutes, channels=ds.channels, tile=tile
+            ds.train, bundle_dir / f"{stem}.kgm", minutes=minutes, channels=ds.channels, tile=tile, size=size
         )
     return models[key]
 
@@ -110,8 +116,8 @@ def evaluate(
     rows = {"knowngood": _knowngood_row(ds, run, scores, maps, ms)}
     _log_row(log, ds.name, "knowngood", rows["knowngood"])
     ablated = _ablation_rows(ds, run, models, (scores, maps), log)
-    if ds.tile:  # what tiling buys: the same recipe on the whole image at the working size
-        run128 = _train(ds, models, TILING_ROW, 0, minutes, bundle_dir, log)
+    if ds.tile or max(run.detector.cfg.shape) != SIZE:  # what tiling or the larger working size buys: the same
+        run128 = _train(ds, models, TILING_ROW, 0, minutes, bundle_dir, log, size=SIZE)  # recipe at 128 px
         ablated[TILING_ROW] = _knowngood_row(ds, run128, *_score_knowngood(ds, run128))
         _log_row(log, ds.name, TILING_ROW, ablated[TILING_ROW])
 
