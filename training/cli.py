@@ -11,7 +11,7 @@ import sys
 from importlib.metadata import entry_points
 from pathlib import Path
 
-from knowngood.training.config import ModelConfig
+from knowngood.training.config import AUTO_SIZE_MAX, SCALE_NOTE_RATIO, ModelConfig
 from knowngood.training.errors import KnowngoodError
 from knowngood.training.export_reviews import register as _add_export_reviews
 
@@ -34,7 +34,8 @@ def _add_train(sub) -> None:
         default=None,
         metavar="PX",
         help=f"working resolution: the long side in px, a multiple of 16 up to 1024 (default {ModelConfig.size}; "
-        "with --from, the bundle's); the short side follows the images' aspect ratio",
+        f"for images over {SCALE_NOTE_RATIO:g}x that, their median long side / {SCALE_NOTE_RATIO:g}, up to "
+        f"{AUTO_SIZE_MAX}; with --from, the bundle's); the short side follows the images' aspect ratio",
     )
     p.add_argument(
         "--tile",

@@ -10,6 +10,11 @@ from knowngood.training.errors import BadConfig
 TERM_FIELDS = ("pixel", "kappa", "perceptual", "memory", "adversarial")  # the terms' weights in ModelConfig
 MEMORY_POOLS = (1, 2)  # the memory's patch strides (x 4 px) a model may use; the choice tries each (selection.py)
 COMBINE_RULES = ("max", "mean")  # how the terms' maps make one heatmap (scoring.ScoringGraph.heat_from)
+# the default working size for large images (train.auto_size): images over SCALE_NOTE_RATIO x the default size
+# are seen at most that much smaller, up to AUTO_SIZE_MAX px (4x the default's cost per image, not more); images
+# still shrunk SCALE_NOTE_RATIO x or more get a warning (train.scale_note)
+SCALE_NOTE_RATIO = 2.5
+AUTO_SIZE_MAX = 256
 
 
 @dataclass(frozen=True)

@@ -9,7 +9,14 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training import bundle
-from knowngood.training.config import TERM_FIELDS, ModelConfig, TrainConfig, to_dict
+from knowngood.training.config import (
+    AUTO_SIZE_MAX,
+    SCALE_NOTE_RATIO,
+    TERM_FIELDS,
+    ModelConfig,
+    TrainConfig,
+    to_dict,
+)
 from knowngood.training.data import ImageSet, to_model_input, working_shape
 from knowngood.training.detector import Detector, pad_to, tile_boxes
 from knowngood.training.errors import BadConfig, BadDataset
@@ -144,9 +151,7 @@ def _sample(x, n: int, seed: int):
     return x[keep] if isinstance(x, torch.Tensor) else [x[k] for k in keep]
 
 
-SCALE_NOTE_RATIO = 2.5  # native long side / working long side from which `scale_note` speaks
 SMALLEST_SEEN_PX = 2  # working-size px a defect needs to be seen at all (README, Limits)
-AUTO_SIZE_MAX = 256  # the largest working size `auto_size` picks: 4x the default's cost per image, not more
 
 
 def median_side(images: list) -> int:
