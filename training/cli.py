@@ -25,7 +25,8 @@ def _add_train(sub) -> None:
         type=float,
         default=None,
         help="wall-time cap of the networks' fitting (default 10 without --steps); the feature critic, the memory "
-        "and the choice of terms follow it (measured: 0.5 to 3 minutes more, 6 for a tiled model)",
+        "and the choice of terms follow it (measured: 0.5 to 3 minutes more for a few hundred images at 128 px, 6 "
+        "for a tiled model or 1000 images at 256 px)",
     )
     p.add_argument("--steps", type=int, default=None, help="fix the work: same seed, data, steps = same bundle")
     p.add_argument(
