@@ -14,7 +14,7 @@ from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import TERMS, ScoringGraph
 
-from tests.bench import speed
+from tests.bench import speed, texture_check
 from tests.bench.combination_levers import image_scores
 from tests.bench.memory import cycled, own_peak_rss_mib
 from tests.bench.peers import PatchMemoryPeer
@@ -91,3 +91,20 @@ def test_the_tiled_speed_of_a_trained_bundle_is_timed_with_the_terms_it_was_chos
     assert out["tile"] == 512
     assert out["tiles"] == len(tile_boxes((speed.TILED_SIDE, speed.TILED_SIDE), 512)) > 16  # the tiles overlap
     assert out["seconds_per_megapixel"] > 0 and out["engine"] == "onnxruntime"
+
+
+def test_texture_check_draws_each_defect_kind_inside_its_mask():
+    # the drawn defects of `tests/bench/texture_check.py` (the photographs themselves need scikit-image, which
+    # `make test` does not install): each kind changes the crop where its mask says, and little elsewhere
+    rng = np.random.default_rng(0)
+    crop = rng.uniform(0.3, 0.7, (texture_check.CROP, texture_check.CROP)).astype(np.float32)
+    other = rng.uniform(0.0, 1.0, (256, 256)).astype(np.float32)
+    for kind in texture_check.KINDS:
+        out, mask = texture_check.draw_defect(crop, kind, rng, other)
+        assert out.shape == crop.shape and out.dtype == np.float32 and 0 <= out.min() and out.max() <= 1
+        assert 10 <= mask.sum() <= 0.1 * mask.size, kind  # a local defect: a few px to a tenth of the crop
+        change = np.abs(out - crop)
+        assert change[mask].mean() > 0.05, kind
+        near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 9, 1, 4)[0]
+        # more than 4 px from the mask only a stain's soft edge changes the crop (by a fraction of its centre's change)
+        assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "stain" else 1e-6), kind

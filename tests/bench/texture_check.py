@@ -1,0 +1,164 @@
+"""knowngood on real photographed textures: the gravel, grass and brick photographs that ship with scikit-image
+(`skimage.data`, 512 x 512 px gray), cut into 128 px crops, with defects drawn here. A check outside the demo's
+rendered parts: random textures (gravel, grass) where every crop shows other stones or blades, and a regular one
+(brick, photographed at an angle).
+
+    pip install scikit-image   (only for this script; not a dependency of knowngood or of `make test`)
+    python -m tests.bench.texture_check [--minutes 2.5] [--out bench_out/texture_check.json] [NAME ...]
+
+Per photograph: 200 known-good training crops from its top 320 rows; 40 good and 50 defective test crops from its
+bottom 192 rows (the test crops never overlap a training crop), 10 of each defect kind: a scratch (a line of 20-50
+px, 1-2 px wide, dark or bright), a pore (a dark ellipse of 3-8 px radius), a stain (a Gaussian blob of 8-20 px,
+brightness x 0.55 or x 1.5), a foreign patch (14-30 px of another of the photographs) and a smear (a disc of 10-16
+px blurred). knowngood trains as `train` does (`knowngood_runner.train`, whole crops at 128 px); the patch-memory
+peer (`peers.PatchMemoryPeer`) on the same crops. Image AUROC (scikit-learn) overall and per defect kind, pixel
+AUROC on the drawn masks. The defects are drawn, not real, but the surfaces are real: design evidence for the
+README's levers, not a target.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import time
+from pathlib import Path
+
+import numpy as np
+import torch
+from knowngood.training.data import to_model_input
+from knowngood.training.metrics import pixel_auroc
+from PIL import Image, ImageDraw, ImageFilter
+from sklearn.metrics import roc_auc_score
+
+from tests.bench import knowngood_runner
+from tests.bench.peers import PatchMemoryPeer
+
+CROP = 128
+TRAIN_ROWS, TEST_ROWS = (0, 320), (320, 512)
+N_TRAIN, N_GOOD, N_BAD = 200, 40, 50
+KINDS = ("scratch", "pore", "stain", "foreign", "smear")
+PHOTOGRAPHS = ("gravel", "grass", "brick")
+FOREIGN = {"gravel": "grass", "grass": "gravel", "brick": "gravel"}  # the photograph a foreign patch comes from
+
+
+def photograph(name: str) -> np.ndarray:
+    try:
+        from skimage import data
+    except ImportError as exc:
+        raise SystemExit("this check reads scikit-image's sample photographs: pip install scikit-image") from exc
+    return np.asarray(getattr(data, name)(), dtype=np.float32) / 255
+
+
+def crops(img: np.ndarray, n: int, rows: tuple[int, int], rng: np.random.Generator) -> list[np.ndarray]:
+    out = []
+    for _ in range(n):
+        y = rng.integers(rows[0], rows[1] - CROP + 1)
+        x = rng.integers(0, img.shape[1] - CROP + 1)
+        out.append(img[y : y + CROP, x : x + CROP].copy())
+    return out
+
+
+def _supersampled(draw) -> np.ndarray:
+    """A mask drawn at 4x by `draw(ImageDraw, scale)` and averaged down: anti-aliased edges."""
+    big = Image.new("L", (4 * CROP, 4 * CROP), 0)
+    draw(ImageDraw.Draw(big), 4)
+    return np.asarray(big.resize((CROP, CROP), Image.BILINEAR), np.float32) / 255
+
+
+def draw_defect(crop: np.ndarray, kind: str, rng: np.random.Generator, other: np.ndarray):
+    """crop (H, W) -> (defective crop, bool mask)."""
+    cy, cx = rng.integers(24, CROP - 24, 2)
+    yy, xx = np.mgrid[:CROP, :CROP]
+    out = crop.copy()
+    if kind == "scratch":
+        length, angle, width = rng.uniform(20, 50), rng.uniform(0, np.pi), int(rng.integers(4, 9))
+        dy, dx = length / 2 * np.sin(angle), length / 2 * np.cos(angle)
+        m = _supersampled(
+            lambda d, s: d.line([(s * (cx - dx), s * (cy - dy)), (s * (cx + dx), s * (cy + dy))], 255, width)
+        )
+        tone, opacity = rng.choice([0.05, 0.95]), rng.uniform(0.6, 1)
+        out = out * (1 - opacity * m) + tone * opacity * m
+    elif kind == "pore":
+        ry = rng.uniform(3, 8)
+        rx = ry * rng.uniform(0.6, 1.4)
+        m = _supersampled(lambda d, s: d.ellipse([s * (cx - rx), s * (cy - ry), s * (cx + rx), s * (cy + ry)], 255))
+        out = out * (1 - m) + rng.uniform(0.02, 0.15) * m
+    elif kind == "stain":
+        r = rng.uniform(8, 20)
+        blob = np.exp(-((yy - cy) ** 2 + (xx - cx) ** 2) / (2 * r * r)).astype(np.float32)
+        out = out * (1 + (rng.choice([0.55, 1.5]) - 1) * blob)
+        m = (blob > 0.3).astype(np.float32)
+    elif kind == "foreign":
+        s = int(rng.integers(14, 30))
+        oy, ox = rng.integers(0, other.shape[0] - s, 2)
+        y0, x0 = cy - s // 2, cx - s // 2
+        out[y0 : y0 + s, x0 : x0 + s] = other[oy : oy + s, ox : ox + s]
+        m = np.zeros_like(out)
+        m[y0 : y0 + s, x0 : x0 + s] = 1
+    else:  # smear
+        m = (((yy - cy) ** 2 + (xx - cx) ** 2) < rng.uniform(10, 16) ** 2).astype(np.float32)
+        blurred = Image.fromarray((crop * 255).astype(np.uint8)).filter(ImageFilter.GaussianBlur(3))
+        out = out * (1 - m) + np.asarray(blurred, np.float32) / 255 * m
+    return np.clip(out, 0, 1).astype(np.float32), m > 0.5
+
+
+def build(name: str, seed: int = 0):
+    """(train crops, test crops, labels, masks), crops as (1, H, W) float32."""
+    rng = np.random.default_rng(seed)
+    img, other = photograph(name), photograph(FOREIGN[name])
+    train = crops(img, N_TRAIN, TRAIN_ROWS, rng)
+    good = crops(img, N_GOOD, TEST_ROWS, rng)
+    bad, masks = [], []
+    for i, c in enumerate(crops(img, N_BAD, TEST_ROWS, rng)):
+        out, mask = draw_defect(c, KINDS[i % len(KINDS)], rng, other)
+        bad.append(out)
+        masks.append(mask)
+    labels = np.r_[np.zeros(N_GOOD), np.ones(N_BAD)]
+    gt = [np.zeros((CROP, CROP), bool)] * N_GOOD + masks
+    return [c[None] for c in train], [c[None] for c in good + bad], labels, gt
+
+
+def measure(name: str, minutes: float, out_dir: Path) -> dict:
+    train, test, labels, gt = build(name)
+    start = time.monotonic()
+    run = knowngood_runner.train(train, out_dir / f"texture-{name}.kgm", minutes=minutes)
+    scores, heats, _ = knowngood_runner.score_images(run.detector, test)
+    x_train = to_model_input(train, size=CROP, channels=1)
+    peer_scores, _ = PatchMemoryPeer().fit(x_train).score(to_model_input(test, size=CROP, channels=1))
+    choice = run.detector.manifest["score"]["choice"]
+    result = {
+        "knowngood": round(float(roc_auc_score(labels, scores)), 4),
+        "knowngood_pixel": round(float(pixel_auroc(gt, heats)), 4),
+        "patch_memory": round(float(roc_auc_score(labels, peer_scores)), 4),
+        "chosen": {k: w for k, w in choice["chosen"].items() if w > 0},
+        "combine": choice["combine"],
+        "train_seconds": round(time.monotonic() - start),
+    }
+    for k, kind in enumerate(KINDS):
+        idx = np.r_[np.arange(N_GOOD), N_GOOD + np.arange(k, N_BAD, len(KINDS))]
+        result[f"knowngood_{kind}"] = round(float(roc_auc_score(labels[idx], np.asarray(scores)[idx])), 3)
+        result[f"patch_memory_{kind}"] = round(float(roc_auc_score(labels[idx], peer_scores[idx])), 3)
+    return result
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("names", nargs="*", help=f"any of {', '.join(PHOTOGRAPHS)} (default: all)")
+    ap.add_argument("--minutes", type=float, default=2.5)
+    ap.add_argument("--out", type=Path, default=Path("bench_out/texture_check.json"))
+    args = ap.parse_args(argv)
+    unknown = sorted(set(args.names) - set(PHOTOGRAPHS))
+    if unknown:
+        ap.error(f"unknown photograph(s) {', '.join(unknown)}; choose from {', '.join(PHOTOGRAPHS)}")
+    torch.set_num_threads(2)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    result = {}
+    for name in args.names or PHOTOGRAPHS:
+        result[name] = measure(name, args.minutes, args.out.parent)
+        print(name, json.dumps(result[name]), flush=True)
+        args.out.write_text(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
