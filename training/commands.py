@@ -12,7 +12,18 @@ from pathlib import Path
 import numpy as np
 from knowngood.training import bundle, runtime
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import expand_paths, fingerprint, load_folder, min_side_for, read_image, skip_reason
+from knowngood.training.data import (
+    ImageSet,
+    expand_paths,
+    fingerprint,
+    list_images,
+    load_folder,
+    min_side_for,
+    read_image,
+    read_shape,
+    skip_reason,
+    working_shape,
+)
 from knowngood.training.detector import Detector
 from knowngood.training.errors import BadBundle, BadConfig, BadImage
 from knowngood.training.heatmap import heatmap_names, heatmap_png_bytes
@@ -52,22 +63,13 @@ def train(args) -> int:
         model = continued_config(start, size=args.size, tile=args.tile, name=str(args.start))
     else:
         model = ModelConfig(size=ModelConfig.size if args.size is None else args.size, tile=args.tile or 0)
-    good = load_folder(args.good_dir, skip_bad=args.skip_bad, min_side=min_side_for(max(model.shape)))
+    good, model = _known_good(args, model, start)
     _report_skipped(good.skipped)
     steps = args.steps if args.steps is not None else 10**9
     minutes = args.minutes if args.minutes is not None else (None if args.steps is not None else 10.0)
     if start is None:
         model = dataclasses.replace(model, channels=good.channels)
-    if start is None and args.size is None and not args.tile:  # large images: a working size nearer their own
-        size = auto_size(good.images)
-        if size != model.size:
-            model = dataclasses.replace(model, size=size)
-            print(
-                f"knowngood: working size {size} px for images of about {median_side(good.images)} px on the "
-                "long side (--size sets it)",
-                file=sys.stderr,
-            )
-    note = scale_note(good.images, model)
+    note = scale_note(good.shapes, model)
     if note:
         print(f"knowngood: note: {note}", file=sys.stderr)
     shifts = TrainConfig.residual_shifts
@@ -105,6 +107,28 @@ def train(args) -> int:
     if start is not None:
         print(f"continued from {args.start} (model {start.model_id}, sha256 {start.sha256})")
     return 0
+
+
+def _known_good(args, model: ModelConfig, start: Detector | None) -> tuple[ImageSet, ModelConfig]:
+    """`train`'s known-good images and the working size they give. The sizes come from the files' headers first
+    (`auto_size` without --size, --tile or --from; the aspect ratio for `working_shape`), so each image is reduced
+    to the working shape as soon as it is decoded and training never holds the set at full resolution (a tiled
+    model's tiles are cut at the camera's scale: its images stay native)."""
+    limits = dict(min_side=min_side_for(max(model.shape)))
+    shape = None
+    if not model.tile:
+        shapes = [hw for hw in (read_shape(p, **limits) for p in list_images(args.good_dir)) if hw is not None]
+        if start is None and args.size is None:  # large images: a working size nearer their own
+            size = auto_size(shapes)
+            if size != model.size:
+                model = dataclasses.replace(model, size=size)
+                print(
+                    f"knowngood: working size {size} px for images of about {median_side(shapes)} px on the "
+                    "long side (--size sets it)",
+                    file=sys.stderr,
+                )
+        shape = model.shape if start is not None else working_shape(shapes, model.size)
+    return load_folder(args.good_dir, skip_bad=args.skip_bad, shape=shape, **limits), model
 
 
 def _load_named(option: str, path: Path | None) -> Detector | None:

@@ -146,8 +146,12 @@ def _orient(arr: np.ndarray, orientation: int) -> np.ndarray:
     return arr
 
 
+def _orientation(img: Image.Image) -> int:
+    return img.getexif().get(_ORIENTATION, 1) if img.format in ("JPEG", "MPO", "TIFF", "PNG") else 1
+
+
 def _to_array(img: Image.Image, *, name: str) -> np.ndarray:
-    orientation = img.getexif().get(_ORIENTATION, 1) if img.format in ("JPEG", "MPO", "TIFF", "PNG") else 1
+    orientation = _orientation(img)
     mode = img.mode
     bits = None
     if mode in ("I;16", "I;16B", "I;16L", "I", "F"):
@@ -205,6 +209,28 @@ def skip_reason(path: Path, exc: Exception) -> str:
     return str(exc).removeprefix(f"{path}: ")
 
 
+def read_shape(path: Path, *, max_pixels: int = MAX_PIXELS, min_side: int = MIN_SIDE) -> tuple[int, int] | None:
+    """An image file's upright (H, W) as `read_image` would give it, from the header alone where PIL reads the file
+    (else from a full decode); None when `read_image` would refuse it under the same limits."""
+    limits = dict(name=str(path), max_pixels=max_pixels, min_side=min_side)
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", Image.DecompressionBombWarning)
+            with Image.open(path) as img:
+                _check_format(img, name=str(path))
+                head = _pil_header(img)
+                _check_header(head, **limits)
+                turned = _orientation(img) in (5, 6, 7, 8)
+        return (head.width, head.height) if turned else (head.height, head.width)
+    except (BadImage, Image.DecompressionBombError, Image.DecompressionBombWarning):
+        return None
+    except Exception:  # beyond PIL (16-bit RGB TIFF, ...): the fallback decoder's header checks, by decoding
+        try:
+            return tuple(read_image(path, max_pixels=max_pixels, min_side=min_side).shape[-2:])
+        except BadImage:
+            return None
+
+
 def read_image(path: Path, **limits) -> np.ndarray:
     """Reads one image file; the error names the file."""
     try:
@@ -232,19 +258,28 @@ def to_model_input(images: list[np.ndarray], *, size: int | tuple[int, int], cha
     resolution afterwards, so nothing is lost for the user.
     """
     shape = (size, size) if isinstance(size, int) else tuple(size)
-    out = []
-    for arr in images:
-        t = torch.from_numpy(arr)[None]
-        if tuple(t.shape[-2:]) != shape:
-            t = F.interpolate(t, size=shape, mode="bilinear", antialias=True, align_corners=False)
-        out.append(to_channels(t, channels))
+    out = [to_channels(torch.from_numpy(resized(arr, shape))[None], channels) for arr in images]
     return torch.cat(out).clamp_(0, 1).contiguous()
 
 
-def working_shape(images: list[np.ndarray], size: int) -> tuple[int, int]:
-    """(height, width) with `size` on the long side and the images' median aspect ratio, both multiples of 16
-    (the networks halve the side four times): a 4:3 camera at size 256 works at 192 x 256."""
-    ratios = sorted(im.shape[-2] / im.shape[-1] for im in images)
+def resized(arr: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
+    """(C, H, W) float32 at (C, *shape), by the one resize inputs get (bilinear, antialiased); as given when it
+    has that shape already, so an image reduced once is never resized again."""
+    if tuple(arr.shape[-2:]) == tuple(shape):
+        return arr
+    t = torch.from_numpy(arr)[None]
+    return F.interpolate(t, size=tuple(shape), mode="bilinear", antialias=True, align_corners=False)[0].numpy()
+
+
+def shapes_of(images: list[np.ndarray]) -> list[tuple[int, int]]:
+    """(H, W) of each (C, H, W) image."""
+    return [tuple(im.shape[-2:]) for im in images]
+
+
+def working_shape(shapes: list[tuple[int, int]], size: int) -> tuple[int, int]:
+    """(height, width) with `size` on the long side and the median aspect ratio of images of (H, W) `shapes`,
+    both multiples of 16 (the networks halve the side four times): a 4:3 camera at size 256 works at 192 x 256."""
+    ratios = sorted(h / w for h, w in shapes)
     ratio = ratios[len(ratios) // 2] if ratios else 1.0
     short = max(32, int(round(size * min(ratio, 1 / ratio) / 16)) * 16)
     return (size, short) if ratio > 1 else (short, size)
@@ -260,12 +295,17 @@ def list_images(folder: Path) -> list[Path]:
 
 @dataclass
 class ImageSet:
-    """Images of one folder at native resolution, with what was skipped and why."""
+    """Images of one folder, with what was skipped and why: at native resolution, or each reduced to one working
+    shape as it was read (`load_folder`'s `shape`); `shapes` are the native (H, W) either way."""
 
     paths: list[Path]
     images: list[np.ndarray]
     skipped: list[tuple[Path, str]] = field(default_factory=list)  # (path, reason without the path)
     folder: Path | None = None  # the folder as given, for the bundle's and the report's record
+    shapes: list[tuple[int, int]] = field(default_factory=list)  # native (H, W); empty: the images' own
+
+    def __post_init__(self):
+        self.shapes = self.shapes or shapes_of(self.images)
 
     @property
     def channels(self) -> int:
@@ -285,21 +325,27 @@ def fingerprint(paths: list[Path]) -> str:
     return h.hexdigest()
 
 
-def load_folder(folder: Path, *, skip_bad: bool = False, min_count: int = 1, **limits) -> ImageSet:
+def load_folder(
+    folder: Path, *, skip_bad: bool = False, min_count: int = 1, shape: tuple[int, int] | None = None, **limits
+) -> ImageSet:
     """Reads every image under `folder` (`limits`: as `decode_image`'s). An unreadable file is an error naming it,
-    or skipped and reported."""
-    paths, images, skipped = [], [], []
+    or skipped and reported. With `shape` (H, W), each image is reduced to it (`resized`) as soon as it is decoded:
+    only one image at a time is held at full resolution."""
+    paths, images, shapes, skipped = [], [], [], []
     for path in list_images(folder):
         try:
-            images.append(read_image(path, **limits))
-            paths.append(path)
+            arr = read_image(path, **limits)
         except BadImage as exc:
             if not skip_bad:
                 raise
             skipped.append((path, skip_reason(path, exc)))
+            continue
+        paths.append(path)
+        shapes.append(tuple(arr.shape[-2:]))
+        images.append(arr if shape is None else resized(arr, shape))
     if len(images) < min_count:
         raise BadDataset(f"{folder}: found {len(images)} readable images, need at least {min_count}")
-    return ImageSet(paths=paths, images=images, skipped=skipped, folder=Path(folder))
+    return ImageSet(paths=paths, images=images, skipped=skipped, folder=Path(folder), shapes=shapes)
 
 
 def expand_paths(paths: list[Path]) -> list[Path]:

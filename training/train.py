@@ -17,7 +17,7 @@ from knowngood.training.config import (
     TrainConfig,
     to_dict,
 )
-from knowngood.training.data import ImageSet, to_model_input, working_shape
+from knowngood.training.data import ImageSet, shapes_of, to_model_input, working_shape
 from knowngood.training.detector import Detector, pad_to, tile_boxes
 from knowngood.training.errors import BadConfig, BadDataset
 from knowngood.training.feature_critic import fit_feature_critic
@@ -65,11 +65,15 @@ def train_bundle(
     `start` (loaded from `start_path`; `train --from`): a bundle whose trained nets (generator, encoder, critic,
     feature critic) this run continues from instead of a fresh init; `model` is then `continued_config(start)`.
     Everything fitted to data (memory, statistics, standardisation, the choice of terms, the threshold, the
-    Fréchet reference, fingerprints) is fitted afresh on `good`; the manifest records the bundle continued from."""
+    Fréchet reference, fingerprints) is fitted afresh on `good`; the manifest records the bundle continued from.
+
+    `good.images` are native, or (whole-image models) already at the working shape (`load_folder`'s `shape`, as
+    `train` loads them): the inputs are the same either way, as the one resize is applied once."""
+    assert not model.tile or shapes_of(good.images) == good.shapes, "a tiled model cuts tiles from native images"
     if len(good.images) < MIN_IMAGES:
         raise BadDataset(f"need at least {MIN_IMAGES} known-good images to train, got {len(good.images)}")
     perceptual = load_pretrained() if model.pretrained else None  # before the fit: fail fast without it
-    model = _with_working_shape(model, good.images) if start is None else _same_shape(model, good.images)
+    model = _with_working_shape(model, good.shapes) if start is None else _same_shape(model, good.shapes)
     fit_idx, std_idx, cal_idx = split_indices(len(good.images), train.holdout_share, train.seed)
     sets = {
         name: _inputs(good.images, idx, model, train.seed)
@@ -154,30 +158,31 @@ def _sample(x, n: int, seed: int):
 SMALLEST_SEEN_PX = 2  # working-size px a defect needs to be seen at all (README, Limits)
 
 
-def median_side(images: list) -> int:
-    """The median native long side of images (C, H, W), px."""
-    sides = sorted(max(im.shape[-2:]) for im in images)
+def median_side(shapes: list[tuple[int, int]]) -> int:
+    """The median long side of images of native (H, W) `shapes`, px."""
+    sides = sorted(max(hw) for hw in shapes)
     return int(sides[len(sides) // 2])
 
 
-def auto_size(images: list, default: int = ModelConfig.size) -> int:
+def auto_size(shapes: list[tuple[int, int]], default: int = ModelConfig.size) -> int:
     """The working long side when `train` is not given --size or --tile: the default for images up to
     `SCALE_NOTE_RATIO` times it (elpv's 300 px cells stay at 128 px), else the smallest multiple of 16 that shrinks
     the median native long side at most that much (a 640 px image: 256 px, so a 10 px defect is still 4 px), up to
-    `AUTO_SIZE_MAX`. Never more than four times the smallest image's short side (`min_side_for`)."""
-    if not images:
+    `AUTO_SIZE_MAX`. Never more than four times the smallest image's short side (`min_side_for`). `shapes`: the
+    images' native (H, W)."""
+    if not shapes:
         return default
-    wanted = int(np.ceil(median_side(images) / SCALE_NOTE_RATIO / 16)) * 16
-    smallest = min(min(im.shape[-2:]) for im in images)
+    wanted = int(np.ceil(median_side(shapes) / SCALE_NOTE_RATIO / 16)) * 16
+    smallest = min(min(hw) for hw in shapes)
     return int(max(default, min(wanted, AUTO_SIZE_MAX, 4 * smallest // 16 * 16)))
 
 
-def scale_note(images: list, model: ModelConfig) -> str | None:
+def scale_note(shapes: list[tuple[int, int]], model: ModelConfig) -> str | None:
     """A warning when the images are shrunk so far that small defects vanish (whole-image models only): the median
     native long side against the working long side, and the smallest defect, in native px, still seen."""
-    if model.tile or not images:
+    if model.tile or not shapes:
         return None
-    native = median_side(images)
+    native = median_side(shapes)
     ratio = native / model.size
     if ratio < SCALE_NOTE_RATIO:
         return None
@@ -221,10 +226,10 @@ def _start_weights(start: Detector | None) -> tuple[dict | None, dict | None]:
     return gan, None if critic is None else critic.state_dict()
 
 
-def _same_shape(model: ModelConfig, images: list) -> ModelConfig:
+def _same_shape(model: ModelConfig, shapes: list[tuple[int, int]]) -> ModelConfig:
     """A continued model keeps its working shape; new images of another aspect ratio would need another one."""
-    if not model.tile and working_shape(images, max(model.shape)) != model.shape:
-        h, w = working_shape(images, max(model.shape))
+    if not model.tile and working_shape(shapes, max(model.shape)) != model.shape:
+        h, w = working_shape(shapes, max(model.shape))
         raise BadDataset(
             f"the images' aspect ratio gives a working shape of {h} x {w} px, but the model continued from works "
             f"at {model.shape[0]} x {model.shape[1]} px: train afresh without --from"
@@ -232,10 +237,10 @@ def _same_shape(model: ModelConfig, images: list) -> ModelConfig:
     return model
 
 
-def _with_working_shape(model: ModelConfig, images: list) -> ModelConfig:
+def _with_working_shape(model: ModelConfig, shapes: list[tuple[int, int]]) -> ModelConfig:
     if model.tile:
         return dataclasses.replace(model, height=0)
-    h, w = working_shape(images, model.size)
+    h, w = working_shape(shapes, model.size)
     return dataclasses.replace(model, size=w, height=0 if h == w else h)
 
 

@@ -11,7 +11,7 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import ImageSet
+from knowngood.training.data import ImageSet, shapes_of
 from knowngood.training.detector import Detector
 from knowngood.training.train import auto_size, train_bundle
 
@@ -53,7 +53,7 @@ def train(
     at `size`, or (None) at `train`'s default for these images (`auto_size`: 128 px unless they are large)."""
     if tile:
         size = SIZE
-    model = ModelConfig(size=auto_size(images) if size is None else size, channels=channels, tile=tile)
+    model = ModelConfig(size=auto_size(shapes_of(images)) if size is None else size, channels=channels, tile=tile)
     tcfg = TrainConfig(steps=steps or 10**9, minutes=minutes or 0.0, seed=seed)
     start = time.monotonic()
     det = train_bundle(

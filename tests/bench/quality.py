@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training import metrics
-from knowngood.training.data import to_model_input
+from knowngood.training.data import shapes_of, to_model_input
 from knowngood.training.scoring import TERMS, resize_maps, term_weights
 from knowngood.training.train import auto_size
 
@@ -60,7 +60,7 @@ def _train(
     """knowngood trained on ds (cached in `models` under `key`): tiled, or whole images at `size` (None: `train`'s
     default for them, `auto_size`)."""
     if key not in models:
-        how = f"{tile} px tiles" if tile else f"whole images at {size or auto_size(ds.train)} px"
+        how = f"{tile} px tiles" if tile else f"whole images at {size or auto_size(shapes_of(ds.train))} px"
         log(f"[{ds.name}] {key}: training for {minutes:g} min on {len(ds.train)} known-good images, {how}")
         bundle_dir.mkdir(parents=True, exist_ok=True)
         stem = ds.name if key == "knowngood" else f"{ds.name}-{key.removeprefix('knowngood-')}"

@@ -7,7 +7,8 @@ import zlib
 import numpy as np
 import pytest
 import tifffile
-from knowngood.training.data import decode_image, load_folder, to_model_input
+import torch
+from knowngood.training.data import decode_image, load_folder, read_image, read_shape, to_model_input
 from knowngood.training.errors import BadDataset, BadImage, ImageTooLarge
 from PIL import Image, ImageOps
 
@@ -154,3 +155,40 @@ def test_tiff_orientation_on_the_tifffile_path():
     arr = np.random.default_rng(3).random((20, 30, 3)).astype(np.float32)
     out = decode_image(_tiff(arr, **FLOAT_RGB, extratags=[(0x0112, "H", 1, 6, True)]), name="o.tif")
     np.testing.assert_array_equal(out, np.moveaxis(np.rot90(arr, -1), -1, 0))
+
+
+def test_read_shape_gives_the_decoded_shape_from_the_header(tmp_path):
+    """Every decoder's upright (H, W), as `read_image` gives it (reference: the decode itself), or None for what
+    `read_image` refuses under the same limits."""
+    rng = np.random.default_rng(0)
+    exif = Image.Exif()
+    exif[0x0112] = 6  # the camera held on its side: upright, the image is 40 wide and 24 high turned
+    files = {
+        "plain.png": _bytes(Image.fromarray(rng.integers(0, 256, (24, 40), np.uint8)), "PNG"),
+        "turned.jpg": _bytes(Image.fromarray(rng.integers(0, 256, (24, 40, 3), np.uint8)), "JPEG", exif=exif),
+        "turned.png": _bytes(Image.fromarray(rng.integers(0, 256, (24, 40, 3), np.uint8)), "PNG", exif=exif),
+        "float.tif": _tiff(rng.random((30, 50, 3)).astype(np.float32), **FLOAT_RGB),  # the tifffile path
+    }
+    for name, data in files.items():
+        (tmp_path / name).write_bytes(data)
+        assert read_shape(tmp_path / name) == read_image(tmp_path / name).shape[-2:], name
+    assert read_shape(tmp_path / "turned.jpg") == (40, 24)
+    (tmp_path / "small.png").write_bytes(files["plain.png"])
+    assert read_shape(tmp_path / "small.png", min_side=32) is None  # 24 px: under the limit, as read_image says
+    (tmp_path / "pages.tif").write_bytes(_tiff(np.zeros((40, 40), np.uint8), pages=3))
+    (tmp_path / "junk.png").write_bytes(b"not an image at all")
+    assert read_shape(tmp_path / "pages.tif") is None and read_shape(tmp_path / "junk.png") is None
+
+
+def test_load_folder_reduces_each_image_as_it_is_read_to_the_very_model_inputs(tmp_path):
+    """With a working shape, each image is held at it (the one resize `to_model_input` applies, so the inputs are
+    identical and never resized twice) and the native (H, W) are kept."""
+    rng = np.random.default_rng(1)
+    for i, (h, w) in enumerate([(300, 400), (310, 420), (240, 320)]):
+        Image.fromarray(rng.integers(0, 256, (h, w, 3), np.uint8)).save(tmp_path / f"{i}.png")
+    native, reduced = load_folder(tmp_path), load_folder(tmp_path, shape=(96, 128))
+    assert reduced.shapes == native.shapes == [(300, 400), (310, 420), (240, 320)]
+    assert all(im.shape == (3, 96, 128) for im in reduced.images)
+    for channels in (1, 3):
+        expected = to_model_input(native.images, size=(96, 128), channels=channels)
+        assert torch.equal(to_model_input(reduced.images, size=(96, 128), channels=channels), expected)

@@ -97,31 +97,27 @@ def test_train_warns_when_small_defects_would_vanish(tmp_path, capsys):
     assert f"about {SIDE} px on the long side and are seen at 128 px (4.0x smaller)" in err
     assert "--tile 128" in err and "--size 256" in err
     # at the camera's scale (tiled) or at a working size near the native one, nothing to say
-    assert scale_note([np.zeros((1, SIDE, SIDE), np.float32)], ModelConfig(tile=TILE)) is None
-    assert scale_note([np.zeros((1, SIDE, SIDE), np.float32)], ModelConfig(size=256)) is None
-
-
-def _shapes(*sides) -> list[np.ndarray]:
-    return [np.zeros((1, h, w), np.float32) for h, w in sides]
+    assert scale_note([(SIDE, SIDE)], ModelConfig(tile=TILE)) is None
+    assert scale_note([(SIDE, SIDE)], ModelConfig(size=256)) is None
 
 
 def test_auto_size_keeps_small_images_at_the_default_and_brings_large_ones_nearer_their_scale():
     """Without --size, images up to 2.5x the default keep it (elpv's 300 px cells: 128 px) and larger ones get the
     smallest multiple of 16 that shrinks them at most 2.5x, up to 256 px; never over 4x the smallest short side."""
-    assert auto_size(_shapes((300, 300))) == 128
-    assert auto_size(_shapes((320, 320))) == 128  # exactly 2.5x
-    assert auto_size(_shapes((330, 330))) == 144  # 132 px rounded up to a multiple of 16
-    assert auto_size(_shapes((480, 640), (480, 640), (640, 480))) == 256  # the long side, whichever it is
-    assert auto_size(_shapes((500, 500), (500, 500), (2000, 2000))) == 208  # the median, not the largest
-    assert auto_size(_shapes((3000, 4000))) == 256  # capped: larger images want --tile (`scale_note` says so)
-    assert auto_size(_shapes((640, 640), (640, 640), (40, 40))) == 160  # a 40 px image allows 160 px at most
+    assert auto_size([(300, 300)]) == 128
+    assert auto_size([(320, 320)]) == 128  # exactly 2.5x
+    assert auto_size([(330, 330)]) == 144  # 132 px rounded up to a multiple of 16
+    assert auto_size([(480, 640), (480, 640), (640, 480)]) == 256  # the long side, whichever it is
+    assert auto_size([(500, 500), (500, 500), (2000, 2000)]) == 208  # the median, not the largest
+    assert auto_size([(3000, 4000)]) == 256  # capped: larger images want --tile (`scale_note` says so)
+    assert auto_size([(640, 640), (640, 640), (40, 40)]) == 160  # a 40 px image allows 160 px at most
     assert auto_size([]) == 128
     # each returned size is one the model accepts
     for side in range(16, 1200, 37):
-        ModelConfig(size=auto_size(_shapes((side, side))))
+        ModelConfig(size=auto_size([(side, side)]))
 
 
-def test_train_without_size_works_nearer_the_images_scale(tmp_path, capsys):
+def test_train_without_size_works_nearer_the_images_scale(tmp_path, capsys, monkeypatch):
     """`train` on 512 px images without --size works at 208 px (512 / 2.5, rounded up to 16), says so, and has no
     shrinking to warn of; --size keeps the user's choice (the test above)."""
     from knowngood.training import bundle
@@ -139,3 +135,19 @@ def test_train_without_size_works_nearer_the_images_scale(tmp_path, capsys):
     assert "smaller)" not in err
     det = bundle.load(out)[0]
     assert det.cfg.shape == (208, 208)
+    # the images were held at 208 px from decoding on; held at 512 px as before, they give the very same bundle
+    from knowngood.training import commands
+
+    native, read = tmp_path / "native.kgm", commands.load_folder
+    loaded = []
+
+    def load_native(folder, *, shape, **kw):
+        assert shape == (208, 208)  # what `train` would have reduced them to
+        loaded.append(read(folder, **kw))
+        return loaded[-1]
+
+    monkeypatch.setattr(commands, "load_folder", load_native)
+    assert main(["train", str(good), "-o", str(native), "--steps", "2", "--quiet"]) == 0
+    assert loaded[0].images[0].shape == (1, SIDE, SIDE)
+    again = bundle.load(native)[0]
+    assert (again.model_id, again.threshold) == (det.model_id, det.threshold)
