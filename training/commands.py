@@ -12,20 +12,10 @@ from pathlib import Path
 import numpy as np
 from knowngood.training import bundle, runtime
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import (
-    ImageSet,
-    expand_paths,
-    fingerprint,
-    list_images,
-    load_folder,
-    min_side_for,
-    read_image,
-    read_shape,
-    skip_reason,
-    working_shape,
-)
+from knowngood.training.data import min_side_for, read_image, read_shape, working_shape
 from knowngood.training.detector import Detector
 from knowngood.training.errors import BadBundle, BadConfig, BadImage
+from knowngood.training.folders import ImageSet, expand_paths, fingerprint, list_images, load_folder, skip_reason
 from knowngood.training.heatmap import heatmap_names, heatmap_png_bytes
 from knowngood.training.selection import term_summary
 from knowngood.training.train import auto_size, continued_config, median_side, scale_note, train_bundle
@@ -113,7 +103,7 @@ def _known_good(args, model: ModelConfig, start: Detector | None) -> tuple[Image
     """`train`'s known-good images and the working size they give. The sizes come from the files' headers first
     (`auto_size` without --size, --tile or --from; the aspect ratio for `working_shape`), so each image is reduced
     to the working shape as soon as it is decoded and training never holds the set at full resolution (a tiled
-    model's tiles are cut at the camera's scale: its images stay native)."""
+    model's tiles are cut at the camera's scale: its images stay in their files and are decoded one at a time)."""
     limits = dict(min_side=min_side_for(max(model.shape)))
     shape = None
     if not model.tile:
@@ -128,7 +118,8 @@ def _known_good(args, model: ModelConfig, start: Detector | None) -> tuple[Image
                     file=sys.stderr,
                 )
         shape = model.shape if start is not None else working_shape(shapes, model.size)
-    return load_folder(args.good_dir, skip_bad=args.skip_bad, shape=shape, **limits), model
+    good = load_folder(args.good_dir, skip_bad=args.skip_bad, shape=shape, in_files=bool(model.tile), **limits)
+    return good, model
 
 
 def _load_named(option: str, path: Path | None) -> Detector | None:

@@ -1,4 +1,4 @@
-"""Images in, float tensors out: decoding, validation, colour mode, resize policy and folder walking.
+"""Images in, float tensors out: decoding, validation, colour mode and resize policy (folders: `folders.py`).
 
 Every image becomes float32 in [0, 1], shape (C, H, W) at its own resolution, C = 1 (grayscale) or 3 (RGB).
 The model's working size and colour mode come from the training set and are applied by `to_model_input`.
@@ -6,16 +6,15 @@ The model's working size and colour mode come from the training set and are appl
 
 from __future__ import annotations
 
-import hashlib
 import io
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 import torch
 import torch.nn.functional as F
-from knowngood.training.errors import BadDataset, BadImage, ImageTooLarge
+from knowngood.training.errors import BadImage, ImageTooLarge
 from PIL import Image
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".tif", ".tiff")
@@ -204,11 +203,6 @@ def min_side_for(size: int, floor: int = MIN_SIDE) -> int:
     return max(floor, size // 4)
 
 
-def skip_reason(path: Path, exc: Exception) -> str:
-    """Why `path` was skipped, without the path the error message already starts with (it is printed once)."""
-    return str(exc).removeprefix(f"{path}: ")
-
-
 def read_shape(path: Path, *, max_pixels: int = MAX_PIXELS, min_side: int = MIN_SIDE) -> tuple[int, int] | None:
     """An image file's upright (H, W) as `read_image` would give it, from the header alone where PIL reads the file
     (else from a full decode); None when `read_image` would refuse it under the same limits."""
@@ -283,81 +277,3 @@ def working_shape(shapes: list[tuple[int, int]], size: int) -> tuple[int, int]:
     ratio = ratios[len(ratios) // 2] if ratios else 1.0
     short = max(32, int(round(size * min(ratio, 1 / ratio) / 16)) * 16)
     return (size, short) if ratio > 1 else (short, size)
-
-
-def list_images(folder: Path) -> list[Path]:
-    """Image files under a folder, recursively, in a stable order."""
-    folder = Path(folder)
-    if not folder.is_dir():
-        raise BadDataset(f"{folder}: not a folder")
-    return sorted(p for p in folder.rglob("*") if p.suffix.lower() in IMAGE_SUFFIXES and p.is_file())
-
-
-@dataclass
-class ImageSet:
-    """Images of one folder, with what was skipped and why: at native resolution, or each reduced to one working
-    shape as it was read (`load_folder`'s `shape`); `shapes` are the native (H, W) either way."""
-
-    paths: list[Path]
-    images: list[np.ndarray]
-    skipped: list[tuple[Path, str]] = field(default_factory=list)  # (path, reason without the path)
-    folder: Path | None = None  # the folder as given, for the bundle's and the report's record
-    shapes: list[tuple[int, int]] = field(default_factory=list)  # native (H, W); empty: the images' own
-
-    def __post_init__(self):
-        self.shapes = self.shapes or shapes_of(self.images)
-
-    @property
-    def channels(self) -> int:
-        """3 if any image has colour, else 1: the colour mode a model trained on this set uses."""
-        return 3 if any(im.shape[0] == 3 for im in self.images) else 1
-
-    def fingerprint(self) -> str:
-        return fingerprint(self.paths)
-
-
-def fingerprint(paths: list[Path]) -> str:
-    """SHA-256 over the sorted file names and contents: identifies the exact image set in a bundle."""
-    h = hashlib.sha256()
-    for p in sorted(paths, key=lambda q: q.name):
-        h.update(p.name.encode())
-        h.update(hashlib.sha256(p.read_bytes()).digest())
-    return h.hexdigest()
-
-
-def load_folder(
-    folder: Path, *, skip_bad: bool = False, min_count: int = 1, shape: tuple[int, int] | None = None, **limits
-) -> ImageSet:
-    """Reads every image under `folder` (`limits`: as `decode_image`'s). An unreadable file is an error naming it,
-    or skipped and reported. With `shape` (H, W), each image is reduced to it (`resized`) as soon as it is decoded:
-    only one image at a time is held at full resolution."""
-    paths, images, shapes, skipped = [], [], [], []
-    for path in list_images(folder):
-        try:
-            arr = read_image(path, **limits)
-        except BadImage as exc:
-            if not skip_bad:
-                raise
-            skipped.append((path, skip_reason(path, exc)))
-            continue
-        paths.append(path)
-        shapes.append(tuple(arr.shape[-2:]))
-        images.append(arr if shape is None else resized(arr, shape))
-    if len(images) < min_count:
-        raise BadDataset(f"{folder}: found {len(images)} readable images, need at least {min_count}")
-    return ImageSet(paths=paths, images=images, skipped=skipped, folder=Path(folder), shapes=shapes)
-
-
-def expand_paths(paths: list[Path]) -> list[Path]:
-    """The image files named on a command line: files as given, folders walked (`list_images`)."""
-    files: list[Path] = []
-    for p in paths:
-        if p.is_dir():
-            files.extend(list_images(p))
-        elif p.is_file():
-            files.append(p)
-        else:
-            raise BadDataset(f"{p}: no such file or folder")
-    if not files:
-        raise BadDataset(f"no images found in {', '.join(map(str, paths))}")
-    return files

@@ -9,7 +9,7 @@ from pathlib import Path
 from knowngood.demo_parts import PART_KINDS, render_scenario
 from knowngood.training.commands import tune_model
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import load_folder
+from knowngood.training.folders import load_folder
 from knowngood.training.train import train_bundle
 
 DEMO_STEPS = 900  # work per part kind; on 2 CPU cores the time cap ends it first (~420 steps), so figures vary a little

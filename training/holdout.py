@@ -6,9 +6,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import list_images, load_folder, min_side_for, read_image
+from knowngood.training.data import min_side_for, read_image
 from knowngood.training.detector import Detector
 from knowngood.training.errors import BadDataset, BadImage
+from knowngood.training.folders import list_images, load_folder
 from knowngood.training.report import HoldoutResult
 
 

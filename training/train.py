@@ -17,11 +17,12 @@ from knowngood.training.config import (
     TrainConfig,
     to_dict,
 )
-from knowngood.training.data import ImageSet, shapes_of, to_model_input, working_shape
+from knowngood.training.data import resized, to_model_input, working_shape
 from knowngood.training.detector import Detector, pad_to, tile_boxes
 from knowngood.training.errors import BadConfig, BadDataset
 from knowngood.training.feature_critic import fit_feature_critic
 from knowngood.training.fit import fit, split_indices
+from knowngood.training.folders import ImageSet, subset
 from knowngood.training.frechet import gaussian_stats
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import ScoringGraph
@@ -67,16 +68,16 @@ def train_bundle(
     Everything fitted to data (memory, statistics, standardisation, the choice of terms, the threshold, the
     Fréchet reference, fingerprints) is fitted afresh on `good`; the manifest records the bundle continued from.
 
-    `good.images` are native, or (whole-image models) already at the working shape (`load_folder`'s `shape`, as
-    `train` loads them): the inputs are the same either way, as the one resize is applied once."""
-    assert not model.tile or shapes_of(good.images) == good.shapes, "a tiled model cuts tiles from native images"
+    `good.images` are native (a tiled model's may stay in their files, `ImageFiles`: decoded one at a time), or
+    (whole-image models) already at the working shape (`load_folder`'s `shape`, as `train` loads them): the inputs
+    are the same either way, as the one resize is applied once."""
     if len(good.images) < MIN_IMAGES:
         raise BadDataset(f"need at least {MIN_IMAGES} known-good images to train, got {len(good.images)}")
     perceptual = load_pretrained() if model.pretrained else None  # before the fit: fail fast without it
     model = _with_working_shape(model, good.shapes) if start is None else _same_shape(model, good.shapes)
     fit_idx, std_idx, cal_idx = split_indices(len(good.images), train.holdout_share, train.seed)
     sets = {
-        name: _inputs(good.images, idx, model, train.seed)
+        name: _inputs(good, idx, model, train.seed)
         for name, idx in (("fit", fit_idx), ("std", std_idx), ("cal", cal_idx))
     }
     hold = torch.cat([sets["std"], sets["cal"]])
@@ -122,17 +123,17 @@ def train_bundle(
         graph.fit_features(sets["fit"], seed=train.seed)
     graph.fit_standardisation(sets["std"])
     det = Detector(cfg=model, graph=graph, threshold=float("inf"))
-    cal_scores, _, _ = det.score_images([good.images[i] for i in cal_idx])
+    cal_scores, _, _ = det.score_images(subset(good.images, cal_idx))
     threshold = conformal_threshold(cal_scores, train.target_false_reject)
     det.threshold = float(threshold.value)
-    train_feats = det.embed_images([good.images[i] for i in fit_idx])
+    train_feats = det.embed_images(subset(good.images, fit_idx))
     mu, sigma = gaussian_stats(train_feats)
     counts = (len(fit_idx), len(std_idx), len(cal_idx))
     det.manifest = _manifest(good, model, train, result, threshold, counts, choice)
     det.manifest["training"]["continued_from"] = (
         None if start is None else {"bundle": str(start_path), "model_id": start.model_id, "sha256": start.sha256}
     )
-    held = [good.images[i] for i in np.r_[std_idx, cal_idx]]
+    held = subset(good.images, np.r_[std_idx, cal_idx])
     frechet = {"train_mu": mu, "train_sigma": sigma, "holdout_features": det.embed_images(held)}
     bundle.save(det, frechet, out)
     if ckpt.exists():
@@ -244,18 +245,24 @@ def _with_working_shape(model: ModelConfig, shapes: list[tuple[int, int]]) -> Mo
     return dataclasses.replace(model, size=w, height=0 if h == w else h)
 
 
-def _inputs(images: list, idx: np.ndarray, model: ModelConfig, seed: int) -> torch.Tensor:
+def _inputs(good: ImageSet, idx: np.ndarray, model: ModelConfig, seed: int) -> torch.Tensor:
     """The networks' inputs from the images at `idx`: whole images at the working shape, or (tiled model) the
-    tiles of each image at the camera's scale, a random `MAX_TILES` of them when there are more."""
-    chosen = [images[i] for i in idx]
+    tiles of each image at the camera's scale, a random `MAX_TILES` of them when there are more, each image
+    decoded once and its tiles reduced to the working shape at once."""
     if not model.tile:
-        return to_model_input(chosen, size=model.shape, channels=model.channels)
-    boxes = [(k, box) for k, im in enumerate(chosen) for box in tile_boxes(im.shape[-2:], model.tile)]
+        return to_model_input(subset(good.images, idx), size=model.shape, channels=model.channels)
+    boxes = [(k, box) for k in idx for box in tile_boxes(good.shapes[k], model.tile)]
     boxes = _sample(boxes, MAX_TILES, seed)
     t = model.tile
-    crops = []
-    for k, (y, x) in boxes:
-        crops.append(pad_to(chosen[k], t)[:, y : y + t, x : x + t])
+    by_image: dict[int, list[int]] = {}
+    for j, (k, _) in enumerate(boxes):
+        by_image.setdefault(k, []).append(j)
+    crops: list = [None] * len(boxes)
+    for k, places in by_image.items():
+        image = pad_to(good.images[k], t)
+        for j in places:
+            y, x = boxes[j][1]
+            crops[j] = resized(np.ascontiguousarray(image[:, y : y + t, x : x + t]), model.shape)
     return to_model_input(crops, size=model.shape, channels=model.channels)
 
 

@@ -53,7 +53,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import list_images, load_folder, read_image, to_model_input
+from knowngood.training.data import read_image, to_model_input
+from knowngood.training.folders import list_images, load_folder
 from PIL import Image
 
 ELPV = {

@@ -11,8 +11,9 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import ImageSet, shapes_of
+from knowngood.training.data import shapes_of
 from knowngood.training.detector import Detector
+from knowngood.training.folders import ImageSet
 from knowngood.training.train import auto_size, train_bundle
 
 SIZE = 128

@@ -68,21 +68,22 @@ def own_peak_rss_mib(module_args: list[str], *, stderr, scratch: Path) -> tuple[
     return proc.returncode, int(peak_file.read_text()) / 1024 if peak_file.exists() else None
 
 
-def training_peak_rss(images: list[np.ndarray], *, steps: int) -> dict:
+def training_peak_rss(images: list[np.ndarray], *, steps: int, tile: int = 0) -> dict:
     """Runs `knowngood train` on `images` (written as PNGs at their own resolution) for `steps` steps in a child
-    process, and its own peak RSS (`own_peak_rss_mib`)."""
+    process (`tile` > 0: `--tile`), and its own peak RSS (`own_peak_rss_mib`)."""
     with tempfile.TemporaryDirectory(prefix="kg-bench-mem-") as tmp:
         good = Path(tmp) / "good"
         _write_pngs(images, good)
         args = ["knowngood.training.cli", "train", str(good), "-o", str(Path(tmp) / "m.kgm")]
-        args += ["--steps", str(steps), "--quiet", "--fresh"]
+        args += ["--steps", str(steps), "--quiet", "--fresh", *(["--tile", str(tile)] if tile else [])]
         start = time.monotonic()
         with open(Path(tmp) / "stderr.txt", "w+b") as err_file:  # a file, not a pipe: a chatty child cannot block
             code, peak = own_peak_rss_mib(args, stderr=err_file, scratch=Path(tmp))
             err_file.seek(0)
             err = err_file.read().decode(errors="replace")[-2000:]
     out = {
-        "command": f"knowngood train GOOD_DIR -o MODEL --steps {steps} --quiet --fresh",
+        "command": f"knowngood train GOOD_DIR -o MODEL --steps {steps} --quiet --fresh"
+        + (f" --tile {tile}" if tile else ""),
         "images": len(images),
         "image_shape": list(images[0].shape),
         "steps": steps,
@@ -130,16 +131,18 @@ def service_memory(service: dict) -> dict:
 
 
 def main(argv: list[str] | None = None) -> int:
-    """`python -m tests.bench.memory [--images 2000] [--steps 50] [--dataset NAME]`: the training-memory figure
-    alone, on a dataset's training images cycled to --images."""
+    """`python -m tests.bench.memory [--images 2000] [--steps 50] [--dataset NAME] [--tile PX]`: the
+    training-memory figure alone, on a dataset's training images cycled to --images."""
     ap = argparse.ArgumentParser(description=main.__doc__.splitlines()[0])
     ap.add_argument("--images", type=int, default=TARGET_IMAGES)
     ap.add_argument("--steps", type=int, default=50)
     ap.add_argument("--dataset", default="elpv-pooled", choices=datasets.NAMES)
+    ap.add_argument("--tile", type=int, default=0, help="train a tiled model (tiles of PX native px)")
     ap.add_argument("--cache", type=Path, default=Path("bench_out/cache"))
     args = ap.parse_args(argv)
     images = cycled(datasets.native_images(args.dataset, args.cache, "train"), args.images)
-    print(json.dumps({"dataset": args.dataset, **training_peak_rss(images, steps=args.steps)}, indent=2))
+    out = training_peak_rss(images, steps=args.steps, tile=args.tile)
+    print(json.dumps({"dataset": args.dataset, **out}, indent=2))
     return 0
 
 

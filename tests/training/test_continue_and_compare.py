@@ -13,7 +13,8 @@ import torch
 from knowngood.demo_parts import render_scenario
 from knowngood.training import bundle
 from knowngood.training.commands import tune_text
-from knowngood.training.data import fingerprint, list_images, read_image
+from knowngood.training.data import read_image
+from knowngood.training.folders import fingerprint, list_images
 from knowngood.training.nets import build
 from sklearn.metrics import roc_auc_score
 

@@ -8,8 +8,9 @@ import numpy as np
 import pytest
 import tifffile
 import torch
-from knowngood.training.data import decode_image, load_folder, read_image, read_shape, to_model_input
+from knowngood.training.data import decode_image, read_image, read_shape, to_model_input
 from knowngood.training.errors import BadDataset, BadImage, ImageTooLarge
+from knowngood.training.folders import load_folder
 from PIL import Image, ImageOps
 
 

@@ -13,7 +13,7 @@ import pytest
 import torch
 from knowngood.demo_parts import PART_KINDS, render_scenario
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import load_folder
+from knowngood.training.folders import load_folder
 from knowngood.training.holdout import load_holdout
 from knowngood.training.metrics import image_auroc, pixel_auroc
 from knowngood.training.report import pixel_sets

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from knowngood.training import __version__, bundle
 from knowngood.training.cli import main
-from knowngood.training.data import fingerprint
+from knowngood.training.folders import fingerprint
 from knowngood.training.heatmap import MAX_ALPHA, heatmap_png_bytes, overlay_png, overlay_rgb
 from knowngood.training.metrics import image_auroc, pixel_auroc, pro_score
 from knowngood.training.report import CAUTION, HoldoutResult, metrics_summary, write_report

@@ -15,8 +15,8 @@ import torch
 from knowngood.demo_parts import render_large
 from knowngood.demo_parts.scenario import image_rng
 from knowngood.training.config import ModelConfig, TrainConfig
-from knowngood.training.data import ImageSet
 from knowngood.training.detector import tile_boxes
+from knowngood.training.folders import ImageSet
 from knowngood.training.train import auto_size, scale_note, train_bundle
 from PIL import Image
 
@@ -151,3 +151,33 @@ def test_train_without_size_works_nearer_the_images_scale(tmp_path, capsys, monk
     assert loaded[0].images[0].shape == (1, SIDE, SIDE)
     again = bundle.load(native)[0]
     assert (again.model_id, again.threshold) == (det.model_id, det.threshold)
+
+
+def test_tiled_train_reads_each_image_from_its_file_and_gives_the_same_bundle(tmp_path, monkeypatch):
+    """`train --tile` leaves the images in their files (decoded one at a time for tiles, scores and drift
+    features) and writes the very bundle it writes from images held in memory."""
+    from knowngood.training import bundle, commands
+    from knowngood.training.cli import main
+    from knowngood.training.data import read_image
+    from knowngood.training.folders import ImageFiles
+
+    good = tmp_path / "good"
+    good.mkdir()
+    for i in range(12):
+        Image.fromarray((_render(None, i, 0)[0][0, :300, :400] * 255).astype(np.uint8)).save(good / f"{i:02d}.png")
+    read, sets = commands.load_folder, []
+
+    def load(folder, *, in_files, held=False, **kw):
+        sets.append(read(folder, in_files=in_files and not held, **kw))
+        return sets[-1]
+
+    monkeypatch.setattr(commands, "load_folder", load)
+    args = ["train", str(good), "--tile", "128", "--steps", "2", "--quiet", "-o"]
+    assert main([*args, str(tmp_path / "files.kgm")]) == 0
+    assert isinstance(sets[0].images, ImageFiles) and sets[0].shapes == [(300, 400)] * 12
+    np.testing.assert_array_equal(sets[0].images[3], read_image(good / "03.png"))
+    monkeypatch.setattr(commands, "load_folder", lambda folder, **kw: load(folder, held=True, **kw))
+    assert main([*args, str(tmp_path / "held.kgm")]) == 0
+    assert isinstance(sets[1].images, list) and sets[1].images[0].shape == (1, 300, 400)
+    files, held = bundle.load(tmp_path / "files.kgm")[0], bundle.load(tmp_path / "held.kgm")[0]
+    assert files.cfg.tile == 128 and (files.model_id, files.threshold) == (held.model_id, held.threshold)
