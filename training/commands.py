@@ -105,10 +105,10 @@ def _known_good(args, model: ModelConfig, start: Detector | None) -> tuple[Image
     to the working shape as soon as it is decoded and training never holds the set at full resolution (a tiled
     model's tiles are cut at the camera's scale: its images stay in their files and are decoded one at a time)."""
     limits = dict(min_side=min_side_for(max(model.shape)))
-    shape = None
-    if not model.tile:
+    shape = None if model.tile else model.shape  # a continued model's (its bundle's)
+    if start is None and not model.tile:
         shapes = [hw for hw in (read_shape(p, **limits) for p in list_images(args.good_dir)) if hw is not None]
-        if start is None and args.size is None:  # large images: a working size nearer their own
+        if args.size is None:  # large images: a working size nearer their own
             size = auto_size(shapes)
             if size != model.size:
                 model = dataclasses.replace(model, size=size)
@@ -117,7 +117,7 @@ def _known_good(args, model: ModelConfig, start: Detector | None) -> tuple[Image
                     "long side (--size sets it)",
                     file=sys.stderr,
                 )
-        shape = model.shape if start is not None else working_shape(shapes, model.size)
+        shape = working_shape(shapes, model.size)
     good = load_folder(args.good_dir, skip_bad=args.skip_bad, shape=shape, in_files=bool(model.tile), **limits)
     return good, model
 
