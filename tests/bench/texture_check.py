@@ -3,7 +3,7 @@
 rendered parts: random textures (gravel, grass) where every crop shows other stones or blades, and a regular one
 (brick, photographed at an angle).
 
-    pip install scikit-image   (only for this script; not a dependency of knowngood or of `make test`)
+    pip install -e ".[textures]"   (scikit-image, only for this script; not installed by `make test`)
     python -m tests.bench.texture_check [--minutes 2.5] [--out bench_out/texture_check.json] [NAME ...]
 
 Per photograph: 200 known-good training crops from its top 320 rows; 40 good and 50 defective test crops from its
@@ -44,7 +44,7 @@ def photograph(name: str) -> np.ndarray:
     try:
         from skimage import data
     except ImportError as exc:
-        raise SystemExit("this check reads scikit-image's sample photographs: pip install scikit-image") from exc
+        raise SystemExit("this check reads scikit-image's sample photographs: pip install -e '.[textures]'") from exc
     return np.asarray(getattr(data, name)(), dtype=np.float32) / 255
 
 
