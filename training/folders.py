@@ -39,9 +39,7 @@ class ImageFiles(Sequence):
     def __len__(self) -> int:
         return len(self.paths)
 
-    def __getitem__(self, i):
-        if isinstance(i, slice):
-            return ImageFiles(self.paths[i], self.limits)
+    def __getitem__(self, i: int) -> np.ndarray:
         return read_image(self.paths[i], **self.limits)
 
     def take(self, idx) -> ImageFiles:
