@@ -25,11 +25,10 @@ from safetensors.torch import load as st_load
 from safetensors.torch import save as st_save
 
 FORMAT = "knowngood-bundle"
-# 6: model.memory_scale (the memory's features on the image enlarged; before it, always on the image itself);
 # 5: model.memory_pool (the memory's patch stride; before it, every memory searched every 4 px);
 # 4: the memory and adversarial terms (graph.memory*, graph.feature_critic.*), term weights, height, tile;
 # 3: model.residual_shift; 2: the perceptual term (graph.perceptual.*, graph.feature_*)
-FORMAT_VERSION = 6
+FORMAT_VERSION = 5
 _ZIP_TIME = (2020, 1, 1, 0, 0, 0)  # fixed entry times: same content -> same bytes
 MAX_BUNDLE_BYTES = 512 * 1024 * 1024
 

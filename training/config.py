@@ -9,7 +9,6 @@ from knowngood.training.errors import BadConfig
 
 TERM_FIELDS = ("pixel", "kappa", "perceptual", "memory", "adversarial")  # the terms' weights in ModelConfig
 MEMORY_POOLS = (1, 2)  # the memory's patch strides (x 4 px) a model may use; the choice tries each (selection.py)
-MEMORY_SCALES = (1, 2)  # the scales of the image the memory's features may be taken at (memory_scale)
 COMBINE_RULES = ("max", "mean")  # how the terms' maps make one heatmap (scoring.ScoringGraph.heat_from)
 # the default working size for large images (train.auto_size): images over SCALE_NOTE_RATIO x the default size
 # are seen at most that much smaller, up to AUTO_SIZE_MAX px (4x the default's cost per image, not more); images
@@ -39,9 +38,6 @@ class ModelConfig:
     # feature cells (of 4 px) each memory patch averages, pool x pool: 1 = a patch every 4 px; 2 = every 8 px, a
     # quarter of the positions to search, so 4 x the entries cost the same (memory.py; chosen per model)
     memory_pool: int = 1
-    # the memory's features taken on the image enlarged this many times: 2 = features of half the cells (2 px), for
-    # fine and random textures; with memory_pool 2 a patch every 4 px of the image (memory.py; chosen per model)
-    memory_scale: int = 1
     residual_shift: int = 1  # px the reconstruction may be off and still explain a pixel (see scoring.py)
     perceptual_shift: int = 1  # positions (of 4 px) a feature may move and still match known-good (fixture jitter)
     smooth_sigma: float = 2.0  # Gaussian smoothing of the anomaly map, in working-resolution pixels
@@ -70,9 +66,8 @@ class ModelConfig:
             raise BadConfig(f"tile must be 0 or 32 to 4096 px with a square working size, got {self.tile}")
         if not 1 <= self.memory_size <= 65536:
             raise BadConfig(f"memory_size must be 1 to 65536, got {self.memory_size}")
-        for name, allowed in (("memory_pool", MEMORY_POOLS), ("memory_scale", MEMORY_SCALES)):
-            if getattr(self, name) not in allowed:
-                raise BadConfig(f"{name} must be one of {', '.join(map(str, allowed))}, got {getattr(self, name)}")
+        if self.memory_pool not in MEMORY_POOLS:
+            raise BadConfig(f"memory_pool must be one of {', '.join(map(str, MEMORY_POOLS))}, got {self.memory_pool}")
         for name in ("residual_shift", "perceptual_shift"):
             if not 0 <= getattr(self, name) <= 3:
                 raise BadConfig(f"{name} must be 0 to 3, got {getattr(self, name)}")

@@ -75,7 +75,12 @@ class Detector:
     def batch_size(self) -> int:
         """Images per forward pass: 32, fewer where the memory term's distance matrix (positions x entries)
         would pass about 64 MB."""
-        return self.graph.batch_size()
+        h, w = self.cfg.shape
+        if self.cfg.memory <= 0:
+            return 32
+        stride = 4 * self.cfg.memory_pool  # px between the memory's patches
+        per_image = (h // stride) * (w // stride) * self.cfg.memory_size * 4
+        return int(max(1, min(32, 64 * 2**20 // per_image)))
 
     @torch.inference_mode()
     def score_and_embed(self, x: torch.Tensor, batch: int | None = None) -> tuple[np.ndarray, torch.Tensor, np.ndarray]:

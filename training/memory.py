@@ -11,8 +11,6 @@ the patches that cover the feature space, so a memory of a few thousand entries 
 
 from __future__ import annotations
 
-from collections.abc import Iterable
-
 import torch
 import torch.nn.functional as F
 
@@ -73,35 +71,11 @@ def greedy_coreset(patches: torch.Tensor, m: int, *, seed: int = 0) -> torch.Ten
     return torch.tensor(chosen)
 
 
-def candidate_rows(n: int, m: int, *, seed: int = 0) -> torch.Tensor:
-    """The rows (at most CANDIDATES_PER_ENTRY x m) of n patches that a memory of m entries is chosen from."""
-    gen = torch.Generator().manual_seed(seed)
-    return torch.randperm(n, generator=gen)[: min(n, CANDIDATES_PER_ENTRY * m)]
-
-
 def build_memory(patches: torch.Tensor, m: int, *, seed: int = 0) -> torch.Tensor:
     """(N, C) known-good patch features -> (min(m, N), C) memory: a coreset of a random candidate subset."""
-    candidates = patches[candidate_rows(len(patches), m, seed=seed)]
-    return candidates[greedy_coreset(candidates, m, seed=seed)].contiguous()
-
-
-def build_memory_streamed(patch_batches: Iterable[torch.Tensor], n: int, m: int, *, seed: int = 0) -> torch.Tensor:
-    """`build_memory` of the n patches that `patch_batches` yields in order, holding only the candidate rows:
-    the same memory as `build_memory(torch.cat(list(patch_batches)), m, seed=seed)`, without all n patches at
-    once (features of images enlarged 2 x are four times the working size's)."""
-    rows = candidate_rows(n, m, seed=seed)
-    order = torch.argsort(rows)  # candidate places in the order their patches arrive
-    arriving = rows[order]
-    candidates, start, taken = None, 0, 0
-    for patches in patch_batches:
-        end = start + len(patches)
-        stop = int(torch.searchsorted(arriving, end))  # arriving[taken:stop] are rows of this batch
-        if candidates is None:
-            candidates = torch.empty(len(rows), patches.shape[1], dtype=patches.dtype)
-        candidates[order[taken:stop]] = patches[arriving[taken:stop] - start]
-        start, taken = end, stop
-    if start != n:
-        raise ValueError(f"expected {n} patches, got {start}")
+    gen = torch.Generator().manual_seed(seed)
+    n_cand = min(len(patches), CANDIDATES_PER_ENTRY * m)
+    candidates = patches[torch.randperm(len(patches), generator=gen)[:n_cand]]
     return candidates[greedy_coreset(candidates, m, seed=seed)].contiguous()
 
 

@@ -14,14 +14,7 @@ import torch
 import torch.nn.functional as F
 from knowngood.training.config import ModelConfig
 from knowngood.training.feature_critic import FeatureCritic
-from knowngood.training.memory import (
-    as_patches,
-    build_memory,
-    build_memory_streamed,
-    memory_features,
-    nearest_distance,
-    patch_features,
-)
+from knowngood.training.memory import build_memory, memory_features, nearest_distance, patch_features
 from knowngood.training.nets import Critic, Encoder, Generator
 from knowngood.training.perceptual import PerceptualNet
 from torch import nn
@@ -163,55 +156,25 @@ class ScoringGraph(nn.Module):
                 feat = (fx - self.critic.features(recon)).pow(2).mean(1, keepdim=True)
                 maps.append(F.interpolate(feat, size=size, mode="bilinear", align_corners=False))
         if self.perceptual is not None:
-            # (B, F, H/4, W/4); not computed for a memory on the enlarged image alone, which takes its own
-            phi = self.perceptual(x) if self._needs_features else None
+            phi = self.perceptual(x)  # (B, F, H/4, W/4)
             coarse = []
             if "perceptual" in self.terms:
                 coarse.append(self._deviation(phi))
             if "memory" in self.terms:
-                coarse.append(self._memory_distance(x, phi))
+                coarse.append(self._memory_distance(phi))
             if "adversarial" in self.terms:
                 coarse.append(self.feature_critic(phi))
             maps.append(F.interpolate(torch.cat(coarse, 1), size=size, mode="bilinear", align_corners=False))
         return self._smooth(torch.cat(maps, 1)), fx
 
-    @property
-    def _needs_features(self) -> bool:
-        """Whether a term takes the pretrained features of the working-size image."""
-        own = "memory" in self.terms and self.cfg.memory_scale == 1
-        return own or "perceptual" in self.terms or "adversarial" in self.terms
-
-    def memory_input(self, x: torch.Tensor) -> torch.Tensor:
-        """(B, F, h', w') patch features the memory is searched with: the pretrained features of x, or of x
-        enlarged `memory_scale` times, each locally averaged (and pooled: `memory.memory_features`)."""
-        if self.cfg.memory_scale > 1:
-            h, w = x.shape[-2:]
-            s = self.cfg.memory_scale
-            x = F.interpolate(x, size=(s * h, s * w), mode="bilinear", align_corners=False)
-        return memory_features(self.perceptual(x), self.cfg.memory_pool)
-
-    def memory_grid(self) -> tuple[int, int]:
-        """(h', w'): the memory's patch positions per image (`memory_input`'s grid)."""
-        s, pool = self.cfg.memory_scale, self.cfg.memory_pool
-        return tuple(self.perceptual.side(s * n) // pool for n in self.cfg.shape)
-
-    def batch_size(self, most: int = 32, budget: int = 64 * 2**20) -> int:
-        """Images per pass: `most`, fewer where the memory term's distance matrix (positions x entries float32)
-        would pass `budget` bytes."""
-        if "memory" not in self.terms:
-            return most
-        h, w = self.memory_grid()
-        return int(max(1, min(most, budget // (h * w * self.cfg.memory_size * 4))))
-
-    def _memory_distance(self, x: torch.Tensor, phi: torch.Tensor | None) -> torch.Tensor:
-        """-> (B, 1, h, w) on the pretrained features' grid: each patch's distance to the nearest memory entry. A
-        pooled memory (`memory_pool` 2) searches every 8 px of its features, one on the enlarged image
-        (`memory_scale` 2) features of 2 px cells; their maps are brought to the features' grid."""
-        feats = memory_features(phi, self.cfg.memory_pool) if self.cfg.memory_scale == 1 else self.memory_input(x)
-        dist = nearest_distance(feats, self.memory, self.memory_sq, self.memory_centre)
-        grid = tuple(self.perceptual.side(n) for n in x.shape[-2:])
-        if tuple(dist.shape[-2:]) != grid:
-            dist = F.interpolate(dist, size=grid, mode="bilinear", align_corners=False)
+    def _memory_distance(self, phi: torch.Tensor) -> torch.Tensor:
+        """(B, F, h, w) features -> (B, 1, h, w): each patch's distance to the nearest memory entry; a pooled
+        memory (`memory_pool` 2) searches every 8 px and its map is brought back to the feature grid."""
+        dist = nearest_distance(
+            memory_features(phi, self.cfg.memory_pool), self.memory, self.memory_sq, self.memory_centre
+        )
+        if self.cfg.memory_pool > 1:
+            dist = F.interpolate(dist, size=phi.shape[-2:], mode="bilinear", align_corners=False)
         return dist
 
     def _deviation(self, feats: torch.Tensor) -> torch.Tensor:
@@ -255,20 +218,13 @@ class ScoringGraph(nn.Module):
         The pretrained net never learns from them, so the training images themselves may be used here."""
         if self.perceptual is None:
             return
-        if feats is None and ("perceptual" in self.terms or self.cfg.memory_scale == 1):
-            feats = self.pretrained_features(good, batch)
+        feats = self.pretrained_features(good, batch) if feats is None else feats
         if "perceptual" in self.terms:
             self.feature_mean.copy_(feats.mean(0))
             self.feature_std.copy_(_shrunk_std(feats))
         if "memory" in self.terms:
-            if self.cfg.memory_scale == 1:
-                patches = patch_features(feats, batch, pool=self.cfg.memory_pool)
-                memory = build_memory(patches, self.cfg.memory_size, seed=seed)
-            else:  # features of the enlarged images, a batch at a time: only the coreset's candidates are kept
-                step = max(1, batch // self.cfg.memory_scale**2)
-                h, w = self.memory_grid()
-                batches = (as_patches(self.memory_input(good[i : i + step])) for i in range(0, len(good), step))
-                memory = build_memory_streamed(batches, len(good) * h * w, self.cfg.memory_size, seed=seed)
+            patches = patch_features(feats, batch, pool=self.cfg.memory_pool)
+            memory = build_memory(patches, self.cfg.memory_size, seed=seed)
             if len(memory) < self.cfg.memory_size:  # fewer patches than places: repeat, the minimum is the same
                 memory = memory[torch.arange(self.cfg.memory_size) % len(memory)]
             centre = memory.mean(0)
@@ -277,13 +233,12 @@ class ScoringGraph(nn.Module):
             self.memory_sq.copy_((self.memory * self.memory).sum(1))
 
     @torch.no_grad()
-    def fit_standardisation(self, good: torch.Tensor, batch: int | None = None) -> None:
+    def fit_standardisation(self, good: torch.Tensor, batch: int = 8) -> None:
         """Sets the per-pixel statistics from held-out known-good images (N, C, H, W), never training images.
         A tiled model's tiles come from anywhere in the image, so its statistics are one per term, not per pixel.
-        Batches of at most 8 and 128 MB of the memory term's distance matrix (batch x positions x entries floats: 8 x
-        1024 x 4096 at 128 px, with its temporaries a few times that), which set training's peak memory at batch 32."""
+        Batches of 8: the memory term's distance matrix is batch x positions x entries floats (8 x 1024 x 4096 at
+        128 px: 134 MB, with its temporaries a few times that), which set training's peak memory at batch 32."""
         self.eval()
-        batch = batch or self.batch_size(most=8, budget=128 * 2**20)
         maps = torch.cat([self.term_maps(good[i : i + batch]) for i in range(0, len(good), batch)])
         mean, std = maps.mean(0), _shrunk_std(maps)
         if self.cfg.tile:

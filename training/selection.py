@@ -29,25 +29,17 @@ PIXEL_SAMPLE = 20000
 TOLERANCE = 0.005  # image AUROC differences below this count as ties (see _ranked)
 SYNTHETIC_COPIES = 5  # defective copies of each held-out image, each of another kind (synthetic.KINDS)
 FIELDS = {"critic": "kappa"}  # a candidate term whose weight field in ModelConfig has another name
-FINE_MEMORY_MAX_PIXELS = 128 * 128  # working shapes up to this many pixels also try the memory on the image 2x
 
 
-def candidates(
-    shifts: tuple[int, ...], memory_size: int = ModelConfig.memory_size, shape: tuple[int, int] = (128, 128)
-) -> dict[str, dict]:
+def candidates(shifts: tuple[int, ...], memory_size: int = ModelConfig.memory_size) -> dict[str, dict]:
     """Candidate name -> the settings it stands for. Alternatives of one term are named term@setting: the image
     residual at each shift (pixel@0, pixel@1) and the memory at each patch stride in px (memory@4, memory@8; the
-    coarser one holds pool² x `memory_size` entries, as many multiply-adds per image as the finer one) and, for
-    working shapes up to 128 x 128 px, memory@2x: memory@8's patches and entries on the image enlarged 2 x, i.e.
-    features of 2 px cells, a patch every 4 px (fine and random textures: gravel, grass, a weave; 4 x memory@8's
-    multiply-adds, as much as a 256 px model's memory@8)."""
+    coarser one holds pool² x `memory_size` entries, as many multiply-adds per image as the finer one)."""
     out = {f"pixel@{s}": {"pixel": 1.0, "residual_shift": s} for s in shifts}
     out |= {"critic": {"kappa": 1.0}, "perceptual": {"perceptual": 1.0}}
     for pool in MEMORY_POOLS:
         size = min(65536, pool * pool * memory_size)
-        out[f"memory@{4 * pool}"] = {"memory": 1.0, "memory_pool": pool, "memory_size": size, "memory_scale": 1}
-    if shape[0] * shape[1] <= FINE_MEMORY_MAX_PIXELS:
-        out["memory@2x"] = {**out["memory@8"], "memory_scale": 2}
+        out[f"memory@{4 * pool}"] = {"memory": 1.0, "memory_pool": pool, "memory_size": size}
     return out | {"adversarial": {"adversarial": 1.0}}
 
 
@@ -68,14 +60,11 @@ class Choice:
 
     def adopt_reference(self, graph: ScoringGraph) -> None:
         """Copies the pretrained terms' fitted reference (statistics, memory) from the candidates into `graph`; the
-        memory from the candidate of the graph's own kind (memory@4, memory@8 and memory@2x each hold one)."""
+        memory from the candidate of the graph's own stride (memory@4 and memory@8 both hold one)."""
         own = dict(graph.named_buffers())
-
-        def kind(cfg: ModelConfig) -> tuple[int, int, int]:
-            return cfg.memory_pool, cfg.memory_size, cfg.memory_scale
-
+        stride = (graph.cfg.memory_pool, graph.cfg.memory_size)
         for candidate in self.graphs.values():
-            same_stride = kind(candidate.cfg) == kind(graph.cfg)
+            same_stride = (candidate.cfg.memory_pool, candidate.cfg.memory_size) == stride
             for name, buf in candidate.named_buffers():
                 if name in REFERENCE and name in own and (same_stride or not name.startswith("memory")):
                     own[name].copy_(buf)
@@ -104,7 +93,7 @@ def candidate_graphs(
     """One scoring graph per candidate term (sharing the trained nets and the pretrained net); a term whose
     weight is 0 in `base` is not a candidate, nor the adversarial term without a trained feature critic."""
     out = {}
-    for name, settings in candidates(shifts, base.memory_size, base.shape).items():
+    for name, settings in candidates(shifts, base.memory_size).items():
         if getattr(base, _field(name)) <= 0 or (name == "adversarial" and feature_critic is None):
             continue  # left out by the caller, or not trained
         cfg = _with_weights(base, **settings)
@@ -115,10 +104,9 @@ def candidate_graphs(
 
 
 @torch.no_grad()
-def _z_maps(graph: ScoringGraph, x: torch.Tensor) -> torch.Tensor:
+def _z_maps(graph: ScoringGraph, x: torch.Tensor, batch: int = 8) -> torch.Tensor:
     """(N, H, W) standardised map of a one-term graph."""
     graph.eval()
-    batch = graph.batch_size(most=8, budget=128 * 2**20)  # as `fit_standardisation`
     parts = []
     for i in range(0, len(x), batch):
         maps = graph.term_maps(x[i : i + batch])
@@ -229,7 +217,7 @@ def choose_terms(
     settings = {"combine": rule}
     for name, w in best.items():
         if w > 0:
-            settings.update(candidates(shifts, base.memory_size, base.shape)[name], **{_field(name): w})
+            settings.update(candidates(shifts, base.memory_size)[name], **{_field(name): w})
     cfg = _with_weights(base, **settings)
     evidence = {
         "method": "synthetic defects (CutPaste rectangles and scars, Perlin-noise blobs and areas, cracks, cut-off "

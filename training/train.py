@@ -211,7 +211,7 @@ def continued_config(start: Detector, *, size: int | None, tile: int | None, nam
             f"--tile {tile} conflicts with --from {name}, which inspects {has}: a continued model keeps its "
             "bundle's settings (leave out --tile, or train afresh without --from)"
         )
-    chosen = (*TERM_FIELDS, "residual_shift", "memory_pool", "memory_size", "memory_scale")  # what the choice sets
+    chosen = (*TERM_FIELDS, "residual_shift", "memory_pool", "memory_size")  # what the choice of terms sets
     defaults = {field: getattr(ModelConfig, field) for field in chosen}
     return dataclasses.replace(start.cfg, **defaults)
 

@@ -75,16 +75,14 @@ def test_frechet_arrays_survive(tiny_bundle):
 
 
 # what each older format lacked, and the settings that reproduce its scores
-_NEW_IN_6 = ("memory_scale",)  # format 5's memories took the image's own features: memory_scale 1, the default
-_NEW_IN_5 = ("memory_pool", *_NEW_IN_6)  # format 4's memories searched every 4 px: memory_pool 1, the default
+_NEW_IN_5 = ("memory_pool",)  # format 4's memories searched every 4 px: memory_pool 1, the default
 _NEW_IN_4 = ("pixel", "memory", "adversarial", "memory_size", "height", "tile", *_NEW_IN_5)
 _NO_POSITION_FREE = {"memory": 0.0, "adversarial": 0.0}
 OLDER_FORMATS = {
     1: ({"perceptual": 0.0, "residual_shift": 0, **_NO_POSITION_FREE}, ("perceptual", "residual_shift", *_NEW_IN_4)),
     2: ({"residual_shift": 0, **_NO_POSITION_FREE}, ("residual_shift", *_NEW_IN_4)),
     3: (_NO_POSITION_FREE, _NEW_IN_4),
-    4: ({"memory_pool": 1, "memory_scale": 1}, _NEW_IN_5),
-    5: ({"memory_scale": 1}, _NEW_IN_6),
+    4: ({"memory_pool": 1}, _NEW_IN_5),
 }
 
 

@@ -10,13 +10,10 @@ from __future__ import annotations
 import itertools
 
 import numpy as np
-import pytest
 import torch
-import torch.nn.functional as F
 from knowngood.training.memory import (
     as_patches,
     build_memory,
-    build_memory_streamed,
     greedy_coreset,
     local_average,
     memory_features,
@@ -83,19 +80,6 @@ def test_build_memory_is_deterministic_and_never_larger_than_its_input():
     assert build_memory(points[:10], 40).shape == (10, 16)
 
 
-def test_a_memory_built_from_patches_in_batches_is_the_one_built_from_them_all():
-    """Only the coreset's candidate rows are kept as the batches arrive (memory@2x's features are 4 x larger): the
-    same entries, bit for bit, as `build_memory` on every patch at once, for uneven batches and for fewer patches
-    than candidates."""
-    points = torch.randn(5000, 8, generator=torch.Generator().manual_seed(4))
-    for m in (40, 400):  # 640 candidates of 5000 rows; every row a candidate
-        cuts = [0, 7, 1200, 1201, 3333, 5000]
-        batches = (points[a:b] for a, b in zip(cuts, cuts[1:]))
-        assert torch.equal(build_memory_streamed(batches, len(points), m, seed=3), build_memory(points, m, seed=3))
-    with pytest.raises(ValueError, match="expected"):
-        build_memory_streamed(iter([points[:10]]), 20, 4)
-
-
 def test_local_average_is_a_three_by_three_mean():
     phi = torch.arange(25, dtype=torch.float32).view(1, 1, 5, 5)
     out = local_average(phi)
@@ -139,43 +123,5 @@ def test_the_pooled_memory_term_is_the_distance_to_the_nearest_pooled_patch():
     want = cdist(q, memory).min(1).reshape(2, 4, 4)
     got = nearest_distance(memory_features(phi, 2), graph.memory, graph.memory_sq, graph.memory_centre)
     assert np.allclose(got[:, 0].numpy(), want, atol=1e-3)
-    full = graph._memory_distance(x[4:], phi)  # the term as the graph computes it: back on the 8 x 8 feature grid
+    full = graph._memory_distance(phi)  # the term as the graph computes it: back on the 8 x 8 feature grid
     assert full.shape == (2, 1, 8, 8) and np.isclose(float(full.max()), want.max(), rtol=0.05)
-
-
-def test_the_fine_memory_is_the_distance_to_the_nearest_patch_of_the_enlarged_images():
-    """memory_scale 2 (memory@2x): the memory holds pooled patches of the pretrained features of the known-good images
-    enlarged 2 x (bilinear), and each patch of an enlarged new image is at its distance to the nearest one (scipy's
-    brute force); the map comes back on the working image's feature grid."""
-    from knowngood.training.config import ModelConfig
-    from knowngood.training.nets import build
-    from knowngood.training.perceptual import load_pretrained
-    from knowngood.training.scoring import ScoringGraph
-
-    cfg = ModelConfig(
-        size=32,
-        channels=1,
-        width=8,
-        z_channels=4,
-        memory_size=48,
-        memory_pool=2,
-        memory_scale=2,
-        perceptual=0,
-        adversarial=0,
-    )
-    net = load_pretrained()
-    graph = ScoringGraph(cfg, *build(cfg), perceptual=net)
-    x = torch.rand(6, 1, 32, 32, generator=torch.Generator().manual_seed(1))
-    graph.fit_features(x[:4], batch=4)  # one enlarged image per batch: the streamed build
-
-    def enlarged_patches(images):  # numpy reference of the features the term searches with
-        phi = net(F.interpolate(images, size=(64, 64), mode="bilinear", align_corners=False))  # (N, F, 16, 16)
-        return as_patches(memory_features(phi, 2)).numpy()  # (N * 8 * 8, F)
-
-    memory = (graph.memory + graph.memory_centre).numpy()
-    known = enlarged_patches(x[:4])
-    assert cdist(memory, known).min(1).max() < 1e-4  # every entry is a known-good enlarged patch
-    want = cdist(enlarged_patches(x[4:]), memory).min(1).reshape(2, 8, 8)
-    assert graph.memory_grid() == (8, 8) and not graph._needs_features
-    got = graph._memory_distance(x[4:], None)  # 8 x 8: already the feature grid of the 32 px image
-    assert got.shape == (2, 1, 8, 8) and np.allclose(got[:, 0].numpy(), want, atol=1e-3)

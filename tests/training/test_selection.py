@@ -138,21 +138,9 @@ def test_one_memory_stride_at_most_in_a_set():
 
 def test_the_coarser_memory_holds_four_times_the_entries_for_the_same_search():
     cand = candidates((0, 1), memory_size=4096)
-    assert cand["memory@4"] == {"memory": 1.0, "memory_pool": 1, "memory_size": 4096, "memory_scale": 1}
-    assert cand["memory@8"] == {"memory": 1.0, "memory_pool": 2, "memory_size": 16384, "memory_scale": 1}
+    assert cand["memory@4"] == {"memory": 1.0, "memory_pool": 1, "memory_size": 4096}
+    assert cand["memory@8"] == {"memory": 1.0, "memory_pool": 2, "memory_size": 16384}
     assert candidates((0,), memory_size=32768)["memory@8"]["memory_size"] == 65536  # ModelConfig's bound
-
-
-def test_the_fine_memory_is_a_candidate_up_to_128_px_only():
-    """memory@2x is memory@8 on the image enlarged 2 x: four times memory@8's search, so it is tried only where that
-    costs no more than a 256 px model's memory@8 (working shapes up to 128 x 128 px, tiles included)."""
-    fine = candidates((0,), memory_size=4096, shape=(128, 128))["memory@2x"]
-    assert fine == {"memory": 1.0, "memory_pool": 2, "memory_size": 16384, "memory_scale": 2}
-    assert "memory@2x" in candidates((0,), shape=(96, 128))
-    for shape in ((128, 144), (256, 256)):
-        assert "memory@2x" not in candidates((0,), shape=shape) and "memory@8" in candidates((0,), shape=shape)
-    sets = [tuple(sorted(w)) for _, w in _subsets(["memory@4", "memory@8", "memory@2x", "critic"])]
-    assert all(sum(n.startswith("memory@") for n in t) <= 1 for t in sets) and ("critic", "memory@2x") in sets
 
 
 @pytest.mark.parametrize("rule", ["max", "mean"])
@@ -179,22 +167,21 @@ def test_choice_is_recorded_and_no_single_term_beats_it():
     )
     ev = choice.evidence
     # no feature critic given: no adversarial term
-    assert set(ev["alone"]) == {"pixel@0", "pixel@1", "critic", "perceptual", "memory@4", "memory@8", "memory@2x"}
+    assert set(ev["alone"]) == {"pixel@0", "pixel@1", "critic", "perceptual", "memory@4", "memory@8"}
     assert ev["images"] == {"good": 6, "synthetic": 6 * SYNTHETIC_COPIES}
     chosen = {k for k, w in ev["chosen"].items() if w > 0}
     assert chosen and not {"pixel@0", "pixel@1"} <= chosen  # one residual shift at most
-    assert sum(c.startswith("memory@") for c in chosen) <= 1  # one memory at most
+    assert not {"memory@4", "memory@8"} <= chosen  # one memory stride at most
     assert ev["combine"] == choice.cfg.combine and ev["combine"] in ("max", "mean")
     assert ev["image_auroc"] >= max(a["image_auroc"] for a in ev["alone"].values()) - TOLERANCE
     weights = {"pixel": choice.cfg.pixel, "critic": choice.cfg.kappa, "memory": choice.cfg.memory}
     assert (weights["memory"] > 0) == any(c.startswith("memory@") for c in chosen) and choice.cfg.adversarial == 0
     assert (weights["pixel"] > 0) == any(c.startswith("pixel@") for c in chosen)
-    if "memory@8" in chosen or "memory@2x" in chosen:
+    if "memory@8" in chosen:
         assert (choice.cfg.memory_pool, choice.cfg.memory_size) == (2, 4 * 256)
-    assert choice.cfg.memory_scale == (2 if "memory@2x" in chosen else 1)
-    # the final graph takes the memory of its own kind from the candidates: each kind's, never another's
-    for name, pool, size, scale in (("memory@4", 1, 256, 1), ("memory@8", 2, 1024, 1), ("memory@2x", 2, 1024, 2)):
-        cfg_m = dataclasses.replace(choice.cfg, memory=1.0, memory_pool=pool, memory_size=size, memory_scale=scale)
+    # the final graph takes the memory of its own stride from the candidates: each stride's, never the other's
+    for name, pool, size in (("memory@4", 1, 256), ("memory@8", 2, 1024)):
+        cfg_m = dataclasses.replace(choice.cfg, memory=1.0, memory_pool=pool, memory_size=size)
         g = choice.graphs[name]
         graph = ScoringGraph(cfg_m, g.encoder, g.generator, g.critic, perceptual=g.perceptual)
         choice.adopt_reference(graph)
