@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -92,15 +92,21 @@ class Detector:
         scores, heats, embeddings = (torch.cat(parts) for parts in zip(*outputs))
         return scores.double().numpy(), heats, embeddings.double().numpy()
 
-    def score_images(self, images: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray], np.ndarray]:
+    def score_images(self, images: Sequence[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray], np.ndarray]:
         """Native-resolution images (C, H, W) -> scores (N,) float64 (higher = less like known-good), heatmaps
         as float32 (H, W) at each image's own resolution, and the drift embeddings (N, F). A tiled model scores
         every tile at the camera's own scale: the heatmap is stitched back, the image score is its worst tile's."""
         if not images:
             return np.zeros(0), [], np.zeros((0, 0))
         if not self.cfg.tile:
-            scores, heats, emb = self.score_and_embed(self.prepare(images))
-            return scores, resize_maps(heats, [im.shape[-2:] for im in images]), emb
+            # one image at a time to the working shape (the same batch as `prepare(images)`): `images` may decode
+            # each on demand (`folders.ImageFiles`), and then only one is held at full resolution
+            sizes, inputs = [], []
+            for im in images:
+                sizes.append(im.shape[-2:])
+                inputs.append(self.prepare([im]))
+            scores, heats, emb = self.score_and_embed(torch.cat(inputs))
+            return scores, resize_maps(heats, sizes), emb
         results = [self._score_tiled(im) for im in images]
         scores = np.array([r[0] for r in results])
         return scores, [r[1] for r in results], np.stack([r[2] for r in results])
@@ -145,8 +151,9 @@ class Detector:
             [img[:, y : y + t, x : x + t] for y, x in boxes], size=self.cfg.shape, channels=self.cfg.channels
         )
 
-    def inspect(self, images: list[np.ndarray]) -> list[Inspection]:
-        """Scores native-resolution images; heatmaps come back at each image's own size."""
+    def inspect(self, images: Sequence[np.ndarray]) -> list[Inspection]:
+        """Scores native-resolution images (a list, or `folders.ImageFiles`: decoded one at a time); heatmaps come
+        back at each image's own size."""
         if not images:
             return []
         scores, maps, _ = self.score_images(images)

@@ -22,6 +22,8 @@ from knowngood.training.tuning import Rate, ThresholdChoice, per_class_catch
 from PIL import Image
 
 if TYPE_CHECKING:  # comparison builds on this module; the report only calls its section
+    from collections.abc import Sequence
+
     from knowngood.training.comparison import Comparison
 
 PRO_MAX_FPR = 0.3
@@ -42,7 +44,7 @@ class HoldoutResult:
     labels: np.ndarray  # (N,) 0 good, 1 defective
     classes: list[str]  # "good" or the defect class (sub-folder of defective/, or "defective")
     scores: np.ndarray  # (N,) anomaly scores
-    images: list[np.ndarray]  # (C, H, W) float32 in [0, 1]
+    images: Sequence[np.ndarray]  # (C, H, W) float32 in [0, 1]: a list, or `ImageFiles` (decoded when asked for)
     heatmaps: list[np.ndarray]  # (H, W) float32, same units as scores
     masks: list[np.ndarray | None]  # (H, W) bool or None
     skipped: list[tuple[Path, str]] = field(default_factory=list)  # unreadable images left out (--skip-bad)
@@ -154,7 +156,8 @@ def _gallery(out: Path, h: HoldoutResult, t: float) -> dict[str, list[dict]]:
         result[kind] = []
         for n, i in enumerate(idx, 1):
             stem = f"{kind}_{n:02d}"
-            pictures = {"image": _to_uint8(h.images[i]), "heatmap": overlay_png(h.images[i], h.heatmaps[i], vmax)}
+            image = h.images[i]  # decoded here, once (a holdout's images may stay in their files)
+            pictures = {"image": _to_uint8(image), "heatmap": overlay_png(image, h.heatmaps[i], vmax)}
             if h.masks[i] is not None:
                 pictures["mask"] = Image.fromarray(np.asarray(h.masks[i], dtype=np.uint8) * 255)
             files = {}

@@ -156,6 +156,18 @@ def test_pro_matches_a_slow_literal_reference():
     assert pro_score(masks, maps, max_fpr=0.3) == pytest.approx(_pro_reference(masks, maps, 0.3), abs=0.01)
 
 
+def test_pro_over_a_subsample_of_pixels_still_matches_the_literal_reference(monkeypatch):
+    """Above `MAX_PIXELS` the thresholds are placed at quantiles of the defect-free pixels of a subsample of all
+    pixels (no copy of every image's defect-free pixels); the rates at each threshold stay exact, so PRO stays
+    within the reference's tolerance."""
+    from knowngood.training import metrics
+
+    masks, maps = _maps(seed=5, sizes=((40, 40), (30, 50)))
+    masks[0][30:34, 5:9] = True
+    monkeypatch.setattr(metrics, "MAX_PIXELS", 600)  # of 3100 pixels
+    assert pro_score(masks, maps, max_fpr=0.3) == pytest.approx(_pro_reference(masks, maps, 0.3), abs=0.01)
+
+
 def test_pro_refuses_masks_without_regions():
     with pytest.raises(ValueError, match="defect region"):
         pro_score([np.zeros((8, 8), bool)], [np.zeros((8, 8))])
