@@ -29,6 +29,7 @@ from knowngood.training.config import TERM_FIELDS
 from knowngood.training.detector import Detector, tile_boxes
 from knowngood.training.feature_critic import fit_feature_critic
 from knowngood.training.fit import split_indices
+from knowngood.training.folders import ImageSet
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import TERMS, ScoringGraph, resize_maps, term_weights
 from knowngood.training.train import _inputs  # the networks' inputs exactly as train_bundle makes them (tiles included)
@@ -54,9 +55,10 @@ def all_terms_graph(det: Detector, images: list[np.ndarray]) -> ScoringGraph:
     config = det.manifest["training"]["config"]
     seed = int(config["seed"])
     fit_idx, std_idx, _ = split_indices(len(images), config["holdout_share"], seed)
+    good = ImageSet(paths=[], images=images)  # `_inputs` takes a folder's set (its native shapes, for tiles)
     g = det.graph
     perceptual = g.perceptual if g.perceptual is not None else load_pretrained()
-    fit_x = _inputs(images, fit_idx, det.cfg, seed)
+    fit_x = _inputs(good, fit_idx, det.cfg, seed)
     phi = torch.cat([perceptual(fit_x[i : i + 32]) for i in range(0, len(fit_x), 32)])  # (N, F, h/4, w/4)
     if det.cfg.adversarial > 0:
         feature_critic = g.feature_critic
@@ -67,7 +69,7 @@ def all_terms_graph(det: Detector, images: list[np.ndarray]) -> ScoringGraph:
     graph = ScoringGraph(cfg, g.encoder, g.generator, g.critic, perceptual=perceptual, feature_critic=feature_critic)
     graph.fit_features(fit_x, seed=seed, feats=phi)
     del phi, fit_x
-    graph.fit_standardisation(_inputs(images, std_idx, det.cfg, seed))
+    graph.fit_standardisation(_inputs(good, std_idx, det.cfg, seed))
     assert tuple(graph.terms) == TERMS, "the weight vectors below follow TERMS"
     return graph.eval()
 

@@ -108,3 +108,28 @@ def test_texture_check_draws_each_defect_kind_inside_its_mask():
         near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 9, 1, 4)[0]
         # more than 4 px from the mask only a stain's soft edge changes the crop (by a fraction of its centre's change)
         assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "stain" else 1e-6), kind
+
+
+def test_the_ablation_reproduces_a_trained_bundle_with_its_own_weights(tmp_path):
+    """`make bench`'s per-term ablation refits every term on a bundle's trained nets from the training images
+    (`ablation.all_terms_graph`, through `train._inputs`, as `train_bundle` made them): with the bundle's own
+    weights it must give the bundle's scores and heatmaps (its `check`), whole-image and tiled."""
+    from knowngood.training.config import TrainConfig
+    from knowngood.training.folders import ImageSet
+    from knowngood.training.train import train_bundle
+
+    from tests.bench import ablation
+
+    rng = np.random.default_rng(0)
+    images = [(0.4 + 0.1 * rng.random((1, 48, 64))).astype(np.float32) for _ in range(16)]
+    test = [(0.4 + 0.1 * rng.random((1, 48, 64))).astype(np.float32) for _ in range(3)]
+    test[0][:, 10:20, 10:20] = 0.9
+    train = TrainConfig(steps=2, minutes=0, seed=0, eval_every=1, critic_feature_steps=5)
+    for name, model in (("whole", ModelConfig(size=32, width=8, z_channels=4, memory_size=64)),
+                        ("tiled", ModelConfig(size=32, tile=32, width=8, z_channels=4, memory_size=64))):  # fmt: skip
+        det = train_bundle(ImageSet([], images), tmp_path / f"{name}.kgm", model=model, train=train, progress=False)
+        graph = ablation.all_terms_graph(det, images)
+        scores, maps, _ = det.score_images(test)
+        out, check = ablation.score_variants(det, graph, test, keep_maps=True, reference=(scores, maps))
+        assert check["max_abs_score_diff"] < 1e-4 and check["max_abs_heatmap_diff"] < 1e-3, (name, check)
+        assert set(out) >= {"knowngood-all-terms", "knowngood-gan-terms", "knowngood-only-memory"}
