@@ -186,6 +186,8 @@ def _normalise(planes: list[np.ndarray], *, name: str, bits: int | None = None) 
         out[c] = plane
     if scale != 1.0:
         out /= np.float32(scale)
+    if first.dtype in (np.uint8, np.uint16) and scale == float(np.iinfo(first.dtype).max):
+        return out  # already in [0, 1]: the two clamps below are two more passes over a multi-megapixel image
     np.fmax(out, 0.0, out=out)  # NaN -> 0 as well, in place (np.nan_to_num would allocate full-size masks)
     return np.minimum(out, 1.0, out=out)
 

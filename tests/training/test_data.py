@@ -32,6 +32,17 @@ def test_gray_rgb_16bit_and_cmyk():
     assert cmyk.shape == (3, 20, 20) and cmyk[0].mean() > 0.8 > cmyk[1].mean()  # CMYK red stays red
 
 
+@pytest.mark.parametrize(("dtype", "fmt"), [(np.uint8, "PNG"), (np.uint16, "TIFF")])
+def test_every_sample_value_maps_to_its_exact_fraction_of_full_scale(dtype, fmt):
+    # 8 and 16 bit samples skip the clamps (their quotients already lie in [0, 1]); the result is still value / max
+    # in float32, ends included (reference: numpy's own division)
+    top = np.iinfo(dtype).max
+    values = np.linspace(0, top, 600).round().astype(dtype).reshape(20, 30)
+    out = decode_image(_bytes(Image.fromarray(values), fmt), name="v")
+    assert out.dtype == np.float32 and np.array_equal(out[0], values.astype(np.float32) / np.float32(top))
+    assert out.min() == 0.0 and out.max() == 1.0
+
+
 def test_rgb_file_holding_gray_is_gray():
     arr = np.repeat(np.arange(600, dtype=np.uint8).reshape(20, 30)[..., None] % 200, 3, axis=2)
     assert decode_image(_bytes(Image.fromarray(arr), "PNG"), name="g").shape == (1, 20, 30)
