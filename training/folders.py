@@ -65,6 +65,9 @@ class ImageSet:
     colours: list[int] = field(default_factory=list)  # channels of each image; empty: the images' own
 
     def __post_init__(self):
+        if isinstance(self.images, ImageFiles) and len(self.images) and not (self.shapes and self.colours):
+            # reading them off the images would decode every file here: `load_folder` records both as it checks
+            raise ValueError("an ImageSet of ImageFiles needs their shapes and colours (load_folder gives them)")
         self.shapes = self.shapes or shapes_of(self.images)
         self.colours = self.colours or [im.shape[0] for im in self.images]
 

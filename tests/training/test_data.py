@@ -204,3 +204,16 @@ def test_load_folder_reduces_each_image_as_it_is_read_to_the_very_model_inputs(t
     for channels in (1, 3):
         expected = to_model_input(native.images, size=(96, 128), channels=channels)
         assert torch.equal(to_model_input(reduced.images, size=(96, 128), channels=channels), expected)
+
+
+def test_a_set_of_images_left_in_their_files_needs_their_recorded_sizes(tmp_path):
+    # an ImageSet would otherwise read shapes and colours off its images, decoding every file of a large set
+    from knowngood.training.folders import ImageFiles, ImageSet
+
+    path = tmp_path / "a.png"
+    Image.fromarray(np.full((40, 50), 90, np.uint8)).save(path)
+    files = ImageFiles([path], {})
+    with pytest.raises(ValueError, match="shapes and colours"):
+        ImageSet([path], files)
+    assert ImageSet([path], files, shapes=[(40, 50)], colours=[1]).shapes == [(40, 50)]
+    assert load_folder(tmp_path, in_files=True).shapes == [(40, 50)]  # load_folder records them as it checks
