@@ -1,0 +1,242 @@
+"""knowngood on line art: 640 px drawings of our own (black strokes 2-3 px wide on white paper, scanned) with
+defects of 10-30 px. A check outside the demo's rendered parts and photographed textures: almost every pixel is
+blank paper, the strokes are thin, and a defect is a few strokes' worth of ink more or less.
+
+    python -m tests.bench.lineart_check [--minutes 2.5] [--out bench_out/lineart_check.json] [LAYOUT ...]
+
+Two layouts: `fixed` (one drawing, a part outline with holes, centre lines, dimension lines and lettering, each
+scan shifted by up to 12 px and turned by up to 1.5 degrees: a drawing checked against its master) and `random`
+(every sheet another drawing of the same kind of elements at other places: no fixed layout). 200 known-good
+training sheets, 40 good and 50 defective test sheets, 10 of each defect kind: a gap (10-30 px of a stroke erased),
+a stray stroke (10-30 px), an ink blot (a disc of 5-15 px radius), a smudge (a grey Gaussian of 8-15 px) and a
+kink (10-30 px of a straight stroke pushed sideways by 4-8 px). knowngood trains as `train` does
+(`knowngood_runner.train`, its default working size for these images); the patch-memory peer
+(`peers.PatchMemoryPeer`) at 128 px, as in the bench. Image AUROC (scikit-learn) overall and per kind, pixel AUROC
+on the defect masks. Design evidence, not a target.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+from pathlib import Path
+
+import numpy as np
+import torch
+from knowngood.training.data import to_model_input
+from knowngood.training.metrics import pixel_auroc
+from PIL import Image, ImageDraw, ImageFilter
+from sklearn.metrics import roc_auc_score
+
+from tests.bench import knowngood_runner
+from tests.bench.peers import PatchMemoryPeer
+
+SIDE = 640
+SS = 2  # drawn at 2x and averaged down: anti-aliased strokes
+N_TRAIN, N_GOOD, N_BAD = 200, 40, 50
+KINDS = ("gap", "stray", "blot", "smudge", "kink")
+LAYOUTS = ("fixed", "random")
+
+
+def _elements(rng: np.random.Generator) -> list[tuple]:
+    """A drawing as a list of primitives in sheet px: ("line", x0, y0, x1, y1, width), ("circle", cx, cy, r, width),
+    ("dash", x0, y0, x1, y1, width)."""
+    els: list[tuple] = []
+    x0, y0 = rng.uniform(70, 130, 2)
+    x1, y1 = SIDE - rng.uniform(70, 130, 2)
+    for a, b in (((x0, y0), (x1, y0)), ((x1, y0), (x1, y1)), ((x1, y1), (x0, y1)), ((x0, y1), (x0, y0))):
+        els.append(("line", *a, *b, 3))
+    for _ in range(int(rng.integers(2, 5))):  # holes with their centre lines
+        r = rng.uniform(18, 45)
+        cx, cy = rng.uniform(x0 + r + 20, x1 - r - 20), rng.uniform(y0 + r + 20, y1 - r - 20)
+        els.append(("circle", cx, cy, r, 2))
+        els.append(("dash", cx - r - 12, cy, cx + r + 12, cy, 1))
+        els.append(("dash", cx, cy - r - 12, cx, cy + r + 12, 1))
+    for _ in range(int(rng.integers(2, 4))):  # inner edges: steps and slots
+        if rng.random() < 0.5:
+            y = rng.uniform(y0 + 30, y1 - 30)
+            els.append(("line", x0, y, rng.uniform(x0 + 80, x1), y, 2))
+        else:
+            x = rng.uniform(x0 + 30, x1 - 30)
+            els.append(("line", x, y0, x, rng.uniform(y0 + 80, y1), 2))
+    # a dimension line with arrowheads and a row of "lettering" under the part
+    dy = y1 + 30
+    els.append(("line", x0, dy, x1, dy, 1))
+    for xa, s in ((x0, 1), (x1, -1)):
+        els.append(("line", xa, dy, xa + 12 * s, dy - 5, 1))
+        els.append(("line", xa, dy, xa + 12 * s, dy + 5, 1))
+    gx = rng.uniform(x0, x0 + 60)
+    for _ in range(int(rng.integers(5, 9))):  # glyphs: two or three short strokes each
+        for _ in range(int(rng.integers(2, 4))):
+            a, b = rng.uniform(0, 12, 2), rng.uniform(0, 12, 2)
+            els.append(("line", gx + a[0], dy + 10 + 1.5 * a[1], gx + b[0], dy + 10 + 1.5 * b[1], 2))
+        gx += rng.uniform(16, 22)
+    return els
+
+
+def _draw(d: ImageDraw.ImageDraw, el: tuple, s: float) -> None:
+    kind = el[0]
+    if kind == "circle":
+        _, cx, cy, r, w = el
+        d.ellipse([s * (cx - r), s * (cy - r), s * (cx + r), s * (cy + r)], outline=255, width=int(s * w))
+    elif kind == "dash":
+        _, x0, y0, x1, y1, w = el
+        n = max(1, int(np.hypot(x1 - x0, y1 - y0) // 10))
+        for i in range(0, n, 2):
+            a, b = i / n, min(1.0, (i + 1) / n)
+            d.line([s * (x0 + a * (x1 - x0)), s * (y0 + a * (y1 - y0)), s * (x0 + b * (x1 - x0)),
+                    s * (y0 + b * (y1 - y0))], fill=255, width=max(1, int(s * w)))
+    else:
+        _, x0, y0, x1, y1, w = el
+        d.line([s * x0, s * y0, s * x1, s * y1], fill=255, width=max(1, int(s * w)))
+
+
+def _defective(els: list[tuple], kind: str, rng: np.random.Generator) -> tuple[list[tuple], dict]:
+    """The drawing with one defect: new primitives, plus what to do after rendering (`post`)."""
+    lines = [e for e in els if e[0] == "line" and np.hypot(e[3] - e[1], e[4] - e[2]) > 60 and e[5] >= 2]
+    el = lines[int(rng.integers(len(lines)))]
+    _, x0, y0, x1, y1, w = el
+    length = rng.uniform(10, 30)
+    t = rng.uniform(0.2, 0.8)
+    px, py = x0 + t * (x1 - x0), y0 + t * (y1 - y0)
+    ux, uy = (x1 - x0) / np.hypot(x1 - x0, y1 - y0), (y1 - y0) / np.hypot(x1 - x0, y1 - y0)
+    new = list(els)
+    if kind == "gap":
+        return new, {"erase": (px - ux * length / 2, py - uy * length / 2, px + ux * length / 2, py + uy * length / 2,
+                               w + 3)}
+    if kind == "kink":
+        off = rng.uniform(4, 8) * rng.choice([-1, 1])
+        a = (px - ux * length / 2, py - uy * length / 2)
+        b = (px + ux * length / 2, py + uy * length / 2)
+        m = (px - uy * off, py + ux * off)
+        new += [("line", *a, *m, w), ("line", *m, *b, w)]
+        return new, {"erase": (a[0] + ux, a[1] + uy, b[0] - ux, b[1] - uy, w + 3), "mask_pad": abs(off)}
+    cx, cy = rng.uniform(120, SIDE - 120, 2)
+    if kind == "stray":
+        ang = rng.uniform(0, np.pi)
+        dx, dy = np.cos(ang) * length / 2, np.sin(ang) * length / 2
+        new.append(("line", cx - dx, cy - dy, cx + dx, cy + dy, int(rng.integers(2, 4))))
+        return new, {"box": (cx - abs(dx) - 3, cy - abs(dy) - 3, cx + abs(dx) + 3, cy + abs(dy) + 3)}
+    if kind == "blot":
+        return new, {"blot": (cx, cy, rng.uniform(5, 15))}
+    return new, {"smudge": (cx, cy, rng.uniform(8, 15), rng.uniform(0.25, 0.45))}
+
+
+def _sheet(els, rng, kind: str | None) -> tuple[np.ndarray, np.ndarray]:
+    shift, angle = rng.uniform(-12, 12, 2), rng.uniform(-1.5, 1.5)
+    post: dict = {}
+    if kind is not None:
+        els, post = _defective(els, kind, rng)
+    if "erase" in post:  # drawn as white over the ink: a stroke with a piece missing
+        ex = post["erase"]
+        els = els + [("erase", *ex)]
+    # render with erasures: draw the ink, then erase
+    canvas = Image.new("L", (SS * SIDE, SS * SIDE), 0)
+    d = ImageDraw.Draw(canvas)
+    mask = Image.new("L", (SIDE, SIDE), 0)
+    md = ImageDraw.Draw(mask)
+    for el in els:
+        if el[0] == "erase":
+            _, a, b, c, e, w = el
+            d.line([SS * a, SS * b, SS * c, SS * e], fill=0, width=int(SS * w))
+            pad = post.get("mask_pad", 0) + w
+            md.line([a, b, c, e], fill=255, width=int(pad + 2))
+        else:
+            _draw(d, el, SS)
+    if "box" in post:
+        md.rectangle(post["box"], fill=255)
+    if "blot" in post:
+        cx, cy, r = post["blot"]
+        d.ellipse([SS * (cx - r), SS * (cy - r), SS * (cx + r), SS * (cy + r)], fill=255)
+        md.ellipse([cx - r, cy - r, cx + r, cy + r], fill=255)
+    ink = canvas.rotate(angle, resample=Image.BILINEAR, translate=(SS * shift[0], SS * shift[1]))
+    ink = ink.resize((SIDE, SIDE), Image.BILINEAR).filter(ImageFilter.GaussianBlur(0.5))
+    mask = mask.rotate(angle, resample=Image.NEAREST, translate=(shift[0], shift[1]))
+    paper = rng.uniform(0.9, 0.97)
+    img = paper * (1 - np.asarray(ink, np.float32) / 255 * rng.uniform(0.85, 0.95))
+    m = np.asarray(mask) > 0
+    if "smudge" in post:
+        cx, cy, r, depth = post["smudge"]
+        yy, xx = np.mgrid[:SIDE, :SIDE]
+        blob = np.exp(-((yy - cy) ** 2 + (xx - cx) ** 2) / (2 * r * r)).astype(np.float32)
+        img = img * (1 - depth * blob)
+        m = blob > 0.3
+    img = img + rng.normal(0, 0.012, img.shape).astype(np.float32)
+    return np.clip(img, 0, 1).astype(np.float32), m
+
+
+def build(layout: str, seed: int = 0):
+    """(train sheets, test sheets, labels, masks), sheets as (1, H, W) float32."""
+    rng = np.random.default_rng(seed)
+    master = _elements(rng)
+
+    def drawing():
+        return master if layout == "fixed" else _elements(rng)
+
+    train = [_sheet(drawing(), rng, None)[0] for _ in range(N_TRAIN)]
+    good = [_sheet(drawing(), rng, None)[0] for _ in range(N_GOOD)]
+    bad, masks = [], []
+    for i in range(N_BAD):
+        img, m = _sheet(drawing(), rng, KINDS[i % len(KINDS)])
+        bad.append(img)
+        masks.append(m)
+    labels = np.r_[np.zeros(N_GOOD), np.ones(N_BAD)]
+    gt = [np.zeros((SIDE, SIDE), bool)] * N_GOOD + masks
+    return [c[None] for c in train], [c[None] for c in good + bad], labels, gt
+
+
+def measure(layout: str, minutes: float, out_dir: Path) -> dict:
+    train, test, labels, gt = build(layout)
+    run = knowngood_runner.train(train, out_dir / f"lineart-{layout}.kgm", minutes=minutes)
+    scores, heats, ms = knowngood_runner.score_images(run.detector, test)
+    peer_scores, _ = PatchMemoryPeer().fit(to_model_input(train, size=128, channels=1)).score(
+        to_model_input(test, size=128, channels=1)
+    )
+    choice = run.detector.manifest["score"]["choice"]
+    result = {
+        "size": run.detector.cfg.size,
+        "knowngood": round(float(roc_auc_score(labels, scores)), 4),
+        "knowngood_pixel": round(float(pixel_auroc(gt, heats)), 4),
+        "patch_memory_128": round(float(roc_auc_score(labels, peer_scores)), 4),
+        "chosen": {k: w for k, w in choice["chosen"].items() if w > 0},
+        "combine": choice["combine"],
+        "train_seconds": round(run.train_seconds),
+        "ms_per_image": round(ms, 1),
+    }
+    for k, kind in enumerate(KINDS):
+        idx = np.r_[np.arange(N_GOOD), N_GOOD + np.arange(k, N_BAD, len(KINDS))]
+        result[f"knowngood_{kind}"] = round(float(roc_auc_score(labels[idx], np.asarray(scores)[idx])), 3)
+        result[f"patch_memory_{kind}"] = round(float(roc_auc_score(labels[idx], peer_scores[idx])), 3)
+    return result
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("layouts", nargs="*", help=f"any of {', '.join(LAYOUTS)} (default: both)")
+    ap.add_argument("--minutes", type=float, default=2.5)
+    ap.add_argument("--out", type=Path, default=Path("bench_out/lineart_check.json"))
+    ap.add_argument("--save", type=Path, help="write the first sheets of each layout as PNGs here, and stop")
+    args = ap.parse_args(argv)
+    unknown = sorted(set(args.layouts) - set(LAYOUTS))
+    if unknown:
+        ap.error(f"unknown layout(s) {', '.join(unknown)}; choose from {', '.join(LAYOUTS)}")
+    if args.save:
+        args.save.mkdir(parents=True, exist_ok=True)
+        for layout in args.layouts or LAYOUTS:
+            _, test, _, gt = build(layout)
+            for i in (0, 1, 40, 41, 42, 43, 44):
+                Image.fromarray((test[i][0] * 255).astype(np.uint8)).save(args.save / f"{layout}-{i}.png")
+                Image.fromarray(gt[i].astype(np.uint8) * 255).save(args.save / f"{layout}-{i}-mask.png")
+        return 0
+    torch.set_num_threads(2)
+    args.out.parent.mkdir(parents=True, exist_ok=True)
+    result = {}
+    for layout in args.layouts or LAYOUTS:
+        result[layout] = measure(layout, args.minutes, args.out.parent)
+        print(layout, json.dumps(result[layout]), flush=True)
+        args.out.write_text(json.dumps(result, indent=2))
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
