@@ -84,8 +84,16 @@ def _draw(d: ImageDraw.ImageDraw, el: tuple, s: float) -> None:
         n = max(1, int(np.hypot(x1 - x0, y1 - y0) // 10))
         for i in range(0, n, 2):
             a, b = i / n, min(1.0, (i + 1) / n)
-            d.line([s * (x0 + a * (x1 - x0)), s * (y0 + a * (y1 - y0)), s * (x0 + b * (x1 - x0)),
-                    s * (y0 + b * (y1 - y0))], fill=255, width=max(1, int(s * w)))
+            d.line(
+                [
+                    s * (x0 + a * (x1 - x0)),
+                    s * (y0 + a * (y1 - y0)),
+                    s * (x0 + b * (x1 - x0)),
+                    s * (y0 + b * (y1 - y0)),
+                ],
+                fill=255,
+                width=max(1, int(s * w)),
+            )
     else:
         _, x0, y0, x1, y1, w = el
         d.line([s * x0, s * y0, s * x1, s * y1], fill=255, width=max(1, int(s * w)))
@@ -102,8 +110,9 @@ def _defective(els: list[tuple], kind: str, rng: np.random.Generator) -> tuple[l
     ux, uy = (x1 - x0) / np.hypot(x1 - x0, y1 - y0), (y1 - y0) / np.hypot(x1 - x0, y1 - y0)
     new = list(els)
     if kind == "gap":
-        return new, {"erase": (px - ux * length / 2, py - uy * length / 2, px + ux * length / 2, py + uy * length / 2,
-                               w + 3)}
+        return new, {
+            "erase": (px - ux * length / 2, py - uy * length / 2, px + ux * length / 2, py + uy * length / 2, w + 3)
+        }
     if kind == "kink":
         off = rng.uniform(4, 8) * rng.choice([-1, 1])
         a = (px - ux * length / 2, py - uy * length / 2)
@@ -189,8 +198,10 @@ def measure(layout: str, minutes: float, out_dir: Path) -> dict:
     train, test, labels, gt = build(layout)
     run = knowngood_runner.train(train, out_dir / f"lineart-{layout}.kgm", minutes=minutes)
     scores, heats, ms = knowngood_runner.score_images(run.detector, test)
-    peer_scores, _ = PatchMemoryPeer().fit(to_model_input(train, size=128, channels=1)).score(
-        to_model_input(test, size=128, channels=1)
+    peer_scores, _ = (
+        PatchMemoryPeer()
+        .fit(to_model_input(train, size=128, channels=1))
+        .score(to_model_input(test, size=128, channels=1))
     )
     choice = run.detector.manifest["score"]["choice"]
     result = {
