@@ -100,58 +100,49 @@ def _draw(d: ImageDraw.ImageDraw, el: tuple, s: float) -> None:
 
 
 def _defective(els: list[tuple], kind: str, rng: np.random.Generator) -> tuple[list[tuple], dict]:
-    """The drawing with one defect: new primitives, plus what to do after rendering (`post`)."""
+    """One defect on the drawing: the primitives it adds (drawn after any erasure) and what else to draw."""
     lines = [e for e in els if e[0] == "line" and np.hypot(e[3] - e[1], e[4] - e[2]) > 60 and e[5] >= 2]
-    el = lines[int(rng.integers(len(lines)))]
-    _, x0, y0, x1, y1, w = el
-    length = rng.uniform(10, 30)
-    t = rng.uniform(0.2, 0.8)
+    _, x0, y0, x1, y1, w = lines[int(rng.integers(len(lines)))]
+    length, t = rng.uniform(10, 30), rng.uniform(0.2, 0.8)
     px, py = x0 + t * (x1 - x0), y0 + t * (y1 - y0)
     ux, uy = (x1 - x0) / np.hypot(x1 - x0, y1 - y0), (y1 - y0) / np.hypot(x1 - x0, y1 - y0)
-    new = list(els)
-    if kind == "gap":
-        return new, {
-            "erase": (px - ux * length / 2, py - uy * length / 2, px + ux * length / 2, py + uy * length / 2, w + 3)
-        }
-    if kind == "kink":
+    a = (px - ux * length / 2, py - uy * length / 2)
+    b = (px + ux * length / 2, py + uy * length / 2)
+    if kind == "gap":  # a piece of the stroke erased; the mask is the erased band
+        return [], {"erase": (*a, *b, w + 3), "mask_width": w + 4}
+    if kind == "kink":  # a piece of the stroke erased and drawn again pushed sideways
         off = rng.uniform(4, 8) * rng.choice([-1, 1])
-        a = (px - ux * length / 2, py - uy * length / 2)
-        b = (px + ux * length / 2, py + uy * length / 2)
         m = (px - uy * off, py + ux * off)
-        new += [("line", *a, *m, w), ("line", *m, *b, w)]
-        return new, {"erase": (a[0] + ux, a[1] + uy, b[0] - ux, b[1] - uy, w + 3), "mask_pad": abs(off)}
+        band = 2 * (abs(off) + w) + 2  # the mask covers the erased piece and the pushed stroke on either side
+        return [("line", *a, *m, w), ("line", *m, *b, w)], {"erase": (*a, *b, w + 3), "mask_width": band}
     cx, cy = rng.uniform(120, SIDE - 120, 2)
     if kind == "stray":
         ang = rng.uniform(0, np.pi)
         dx, dy = np.cos(ang) * length / 2, np.sin(ang) * length / 2
-        new.append(("line", cx - dx, cy - dy, cx + dx, cy + dy, int(rng.integers(2, 4))))
-        return new, {"box": (cx - abs(dx) - 3, cy - abs(dy) - 3, cx + abs(dx) + 3, cy + abs(dy) + 3)}
+        stroke = ("line", cx - dx, cy - dy, cx + dx, cy + dy, int(rng.integers(2, 4)))
+        return [stroke], {"box": (cx - abs(dx) - 3, cy - abs(dy) - 3, cx + abs(dx) + 3, cy + abs(dy) + 3)}
     if kind == "blot":
-        return new, {"blot": (cx, cy, rng.uniform(5, 15))}
-    return new, {"smudge": (cx, cy, rng.uniform(8, 15), rng.uniform(0.25, 0.45))}
+        return [], {"blot": (cx, cy, rng.uniform(5, 15))}
+    return [], {"smudge": (cx, cy, rng.uniform(8, 15), rng.uniform(0.25, 0.45))}
 
 
-def _sheet(els, rng, kind: str | None) -> tuple[np.ndarray, np.ndarray]:
+def _sheet(els, rng, kind: str | None, defect_rng: np.random.Generator | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """One scan of the drawing `els`, with a defect of `kind` (None: known-good) -> (sheet, bool mask). The scan's
+    shift, turn, paper and noise come from `rng`, the defect from `defect_rng` (default: `rng`)."""
     shift, angle = rng.uniform(-12, 12, 2), rng.uniform(-1.5, 1.5)
-    post: dict = {}
-    if kind is not None:
-        els, post = _defective(els, kind, rng)
-    if "erase" in post:  # drawn as white over the ink: a stroke with a piece missing
-        ex = post["erase"]
-        els = els + [("erase", *ex)]
-    # render with erasures: draw the ink, then erase
+    added, post = _defective(els, kind, defect_rng or rng) if kind is not None else ([], {})
     canvas = Image.new("L", (SS * SIDE, SS * SIDE), 0)
     d = ImageDraw.Draw(canvas)
     mask = Image.new("L", (SIDE, SIDE), 0)
     md = ImageDraw.Draw(mask)
     for el in els:
-        if el[0] == "erase":
-            _, a, b, c, e, w = el
-            d.line([SS * a, SS * b, SS * c, SS * e], fill=0, width=int(SS * w))
-            pad = post.get("mask_pad", 0) + w
-            md.line([a, b, c, e], fill=255, width=int(pad + 2))
-        else:
-            _draw(d, el, SS)
+        _draw(d, el, SS)
+    if "erase" in post:
+        xa, ya, xb, yb, w = post["erase"]
+        d.line([SS * xa, SS * ya, SS * xb, SS * yb], fill=0, width=int(SS * w))
+        md.line([xa, ya, xb, yb], fill=255, width=int(post["mask_width"]))
+    for el in added:
+        _draw(d, el, SS)
     if "box" in post:
         md.rectangle(post["box"], fill=255)
     if "blot" in post:

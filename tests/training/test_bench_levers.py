@@ -14,7 +14,7 @@ from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import TERMS, ScoringGraph
 
-from tests.bench import speed, texture_check
+from tests.bench import lineart_check, speed, texture_check
 from tests.bench.combination_levers import image_scores
 from tests.bench.memory import cycled, own_peak_rss_mib
 from tests.bench.peers import PatchMemoryPeer
@@ -108,6 +108,21 @@ def test_texture_check_draws_each_defect_kind_inside_its_mask():
         near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 9, 1, 4)[0]
         # more than 4 px from the mask only a stain's soft edge changes the crop (by a fraction of its centre's change)
         assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "stain" else 1e-6), kind
+
+
+def test_lineart_check_draws_each_defect_kind_inside_its_mask():
+    # `tests/bench/lineart_check.py`: the same scan (shift, turn, paper, noise) with and without each defect differs
+    # inside the defect's mask, and beyond 3 px of it only by a smudge's soft edge
+    els = lineart_check._elements(np.random.default_rng(0))
+    for k, kind in enumerate(lineart_check.KINDS):
+        clean, none = lineart_check._sheet(els, np.random.default_rng(k), None)
+        bad, mask = lineart_check._sheet(els, np.random.default_rng(k), kind, defect_rng=np.random.default_rng(9))
+        assert not none.any() and clean.shape == bad.shape == mask.shape == (lineart_check.SIDE,) * 2
+        assert 30 <= mask.sum() <= 0.01 * mask.size, kind  # 10-30 px defects on a 640 px sheet
+        change = np.abs(bad - clean)
+        assert change[mask].max() > 0.3, kind  # ink added or taken away
+        near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 7, 1, 3)[0]
+        assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "smudge" else 1e-6), kind
 
 
 def test_the_ablation_reproduces_a_trained_bundle_with_its_own_weights(tmp_path):
