@@ -11,7 +11,7 @@ import numpy as np
 import torch
 from knowngood.training.config import ModelConfig
 from knowngood.training.data import to_model_input
-from knowngood.training.scoring import ScoringGraph, resize_maps
+from knowngood.training.scoring import ScoringGraph, images_per_pass, resize_maps
 
 
 @dataclass(frozen=True)
@@ -75,12 +75,7 @@ class Detector:
     def batch_size(self) -> int:
         """Images per forward pass: 32, fewer where the memory term's distance matrix (positions x entries)
         would pass about 64 MB."""
-        h, w = self.cfg.shape
-        if self.cfg.memory <= 0:
-            return 32
-        stride = 4 * self.cfg.memory_pool  # px between the memory's patches
-        per_image = (h // stride) * (w // stride) * self.cfg.memory_size * 4
-        return int(max(1, min(32, 64 * 2**20 // per_image)))
+        return images_per_pass(self.cfg, most=32, budget=64 * 2**20)
 
     @torch.inference_mode()
     def score_and_embed(self, x: torch.Tensor, batch: int | None = None) -> tuple[np.ndarray, torch.Tensor, np.ndarray]:

@@ -78,6 +78,21 @@ def term_weights(cfg: ModelConfig) -> dict[str, float]:
     return {name: w for name, w in weights.items() if w > 0}
 
 
+PASS_BYTES = 128 * 2**20  # the memory term's distance matrix in one forward pass of training's scoring
+
+
+def images_per_pass(cfg: ModelConfig, most: int, budget: int = PASS_BYTES) -> int:
+    """Images per forward pass: `most`, fewer where the memory term's distance matrix (positions x entries
+    float32 per image) would pass `budget` bytes, at least one. At 128 px (1024 positions x 4096 entries, 16 MiB
+    an image) 8 fit the default budget; a 256 px model with 16384 entries (256 MiB an image) goes one by one."""
+    if cfg.memory <= 0:
+        return most
+    h, w = cfg.shape
+    stride = 4 * cfg.memory_pool  # px between the memory's patches
+    per_image = (h // stride) * (w // stride) * cfg.memory_size * 4
+    return int(max(1, min(most, budget // per_image)))
+
+
 class ScoringGraph(nn.Module):
     """The whole inference path as one module (exportable to ONNX): x (B, C, H, W) in [0, 1] -> anomaly score
     (B,), higher = less like known-good, standardised heatmap (B, H, W) and the drift embedding (B, F).
@@ -233,12 +248,14 @@ class ScoringGraph(nn.Module):
             self.memory_sq.copy_((self.memory * self.memory).sum(1))
 
     @torch.no_grad()
-    def fit_standardisation(self, good: torch.Tensor, batch: int = 8) -> None:
+    def fit_standardisation(self, good: torch.Tensor, batch: int | None = None) -> None:
         """Sets the per-pixel statistics from held-out known-good images (N, C, H, W), never training images.
         A tiled model's tiles come from anywhere in the image, so its statistics are one per term, not per pixel.
-        Batches of 8: the memory term's distance matrix is batch x positions x entries floats (8 x 1024 x 4096 at
-        128 px: 134 MB, with its temporaries a few times that), which set training's peak memory at batch 32."""
+        Batches of at most 8 (`images_per_pass`): the memory term's distance matrix is batch x positions x entries
+        floats (8 x 1024 x 4096 at 128 px: 134 MB, with its temporaries a few times that), which set training's
+        peak memory at batch 32."""
         self.eval()
+        batch = batch or images_per_pass(self.cfg, most=8)
         maps = torch.cat([self.term_maps(good[i : i + batch]) for i in range(0, len(good), batch)])
         mean, std = maps.mean(0), _shrunk_std(maps)
         if self.cfg.tile:

@@ -32,6 +32,7 @@ from knowngood.training.fit import split_indices
 from knowngood.training.folders import ImageSet
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import TERMS, ScoringGraph, resize_maps, term_weights
+from knowngood.training.selection import fine_memory_entries
 from knowngood.training.train import _inputs  # the networks' inputs exactly as train_bundle makes them (tiles included)
 
 GAN_TERMS = ("pixel", "critic")
@@ -66,6 +67,8 @@ def all_terms_graph(det: Detector, images: list[np.ndarray]) -> ScoringGraph:
         with torch.enable_grad():
             feature_critic = fit_feature_critic(phi, steps=int(config["critic_feature_steps"]), seed=seed)
     cfg = dataclasses.replace(det.cfg, **dict.fromkeys(TERM_FIELDS, 1.0))
+    if det.cfg.memory <= 0:  # no memory chosen: the 4 px one, with the entries the choice gave it at this size
+        cfg = dataclasses.replace(cfg, memory_pool=1, memory_size=fine_memory_entries(det.cfg.memory_size, cfg.shape))
     graph = ScoringGraph(cfg, g.encoder, g.generator, g.critic, perceptual=perceptual, feature_critic=feature_critic)
     graph.fit_features(fit_x, seed=seed, feats=phi)
     del phi, fit_x

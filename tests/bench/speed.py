@@ -12,6 +12,7 @@ bundle with the terms it was chosen with (alone: `python -m tests.bench.speed --
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import statistics
 import time
@@ -25,6 +26,7 @@ from knowngood.training.config import ModelConfig
 from knowngood.training.detector import Detector, tile_boxes
 from knowngood.training.runtime import OnnxRunner
 from knowngood.training.scoring import term_weights
+from knowngood.training.selection import fine_memory_entries
 from torch.utils.flop_counter import FlopCounterMode
 
 THREADS = 2
@@ -122,7 +124,9 @@ def synthetic_detector(size: int, *, tile: int = 0) -> Detector:
     """An untrained model with every term at `size` px (tiles of `tile` px when > 0), its memory filled with random
     entries (a zero memory would be a degenerate matrix product); for timing only."""
     torch.manual_seed(0)
+    # the 4 px memory with the entries the choice gives it at this working size (16384 at 256 px)
     cfg = ModelConfig(size=size, tile=tile)
+    cfg = dataclasses.replace(cfg, memory_size=fine_memory_entries(cfg.memory_size, cfg.shape))
     graph = new_graph(cfg)
     graph.memory.normal_()
     graph.memory_sq.copy_((graph.memory * graph.memory).sum(1))

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 import torch
 from knowngood.training import bundle, scoring
+from knowngood.training.config import ModelConfig
 
 
 @pytest.mark.parametrize("rule", ["max", "mean"])
@@ -145,3 +146,13 @@ def test_shift_tolerant_residual_still_sees_a_pit_the_reconstruction_leaves_out(
         res = scoring.pixel_residual(x, recon, shift=shift)
         assert float(res[..., 19:21, 21:23].min()) == pytest.approx(0.3, abs=1e-6)  # its core, whatever the shift
         assert float(res[..., :, :8].max()) == pytest.approx(0.0, abs=1e-7)  # the ground stays clean
+
+
+def test_a_forward_pass_holds_at_most_its_budget_of_memory_distances():
+    # the memory term's distance matrix is positions x entries float32 per image (16 MiB at 128 px, 4096 entries)
+    per_pass = scoring.images_per_pass
+    assert per_pass(ModelConfig(size=128), most=8) == 8  # 8 x 16 MiB: the default 128 MiB
+    assert per_pass(ModelConfig(size=128), most=32, budget=64 * 2**20) == 4  # the Detector's budget
+    assert per_pass(ModelConfig(size=128, memory_pool=2, memory_size=16384), most=8) == 8  # the same search
+    assert per_pass(ModelConfig(size=256, memory_size=16384), most=8) == 1  # 256 MiB an image: one by one
+    assert per_pass(ModelConfig(size=256, memory=0), most=8) == 8  # no memory, no limit

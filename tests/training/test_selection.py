@@ -24,6 +24,7 @@ from knowngood.training.selection import (
     _subsets,
     candidates,
     choose_terms,
+    fine_memory_entries,
 )
 from knowngood.training.synthetic import _crack, _patch, _region, paste_defects, perlin, perlin_mask
 from scipy import ndimage
@@ -141,6 +142,27 @@ def test_the_coarser_memory_holds_four_times_the_entries_for_the_same_search():
     assert cand["memory@4"] == {"memory": 1.0, "memory_pool": 1, "memory_size": 4096}
     assert cand["memory@8"] == {"memory": 1.0, "memory_pool": 2, "memory_size": 16384}
     assert candidates((0,), memory_size=32768)["memory@8"]["memory_size"] == 65536  # ModelConfig's bound
+
+
+def test_the_fine_memory_grows_with_the_working_area_and_the_coarse_one_does_not():
+    # memory_size entries per 128 x 128 px of working area, 1 to 4 times memory_size
+    assert fine_memory_entries(4096, (128, 128)) == fine_memory_entries(4096, (96, 128)) == 4096
+    assert fine_memory_entries(4096, (256, 192)) == 12288 and fine_memory_entries(4096, (256, 256)) == 16384
+    assert fine_memory_entries(4096, (512, 512)) == 16384  # the cap: the search grows with positions x entries
+    assert fine_memory_entries(32768, (256, 256)) == 65536  # ModelConfig's bound
+    cand = candidates((0,), memory_size=4096, shape=(256, 256))
+    assert cand["memory@4"]["memory_size"] == cand["memory@8"]["memory_size"] == 16384
+
+
+def test_the_choice_fits_the_fine_memory_with_the_entries_of_its_working_area():
+    # a 256 px model: the 4 px memory is fitted with 4 x memory_size entries, and a chosen one keeps them
+    cfg = ModelConfig(size=256, channels=1, width=8, z_channels=4, memory_size=16, pixel=0, kappa=0, perceptual=0)
+    cfg = dataclasses.replace(cfg, adversarial=0)
+    x = _images(10, size=256)
+    choice = choose_terms(cfg, build(cfg), load_pretrained(), fit_x=x[:4], std_x=x[4:8], good_x=x[8:], seed=0)
+    assert set(choice.graphs) == {"memory@4", "memory@8"}
+    assert choice.graphs["memory@4"].memory.shape[0] == 64 and choice.graphs["memory@8"].memory.shape[0] == 64
+    assert choice.cfg.memory > 0 and choice.cfg.memory_size == 64
 
 
 @pytest.mark.parametrize("rule", ["max", "mean"])
