@@ -10,6 +10,7 @@ from knowngood.training.errors import BadConfig
 TERM_FIELDS = ("pixel", "kappa", "perceptual", "memory", "adversarial")  # the terms' weights in ModelConfig
 MEMORY_POOLS = (1, 2)  # the memory's patch strides (x 4 px) a model may use; the choice tries each (selection.py)
 COMBINE_RULES = ("max", "mean")  # how the terms' maps make one heatmap (scoring.ScoringGraph.heat_from)
+MAX_MEMORY_SIZE = 65536  # the most entries a memory may hold (the choice never asks for more)
 # the default working size for large images (train.auto_size): images over SCALE_NOTE_RATIO x the default size
 # are seen at most that much smaller, up to AUTO_SIZE_MAX px (4x the default's cost per image, not more); images
 # still shrunk SCALE_NOTE_RATIO x or more get a warning (train.scale_note)
@@ -64,8 +65,8 @@ class ModelConfig:
             raise BadConfig(f"height must be 0 or a multiple of 16 from 32 to 1024, got {self.height}")
         if self.tile and (self.height or not 32 <= self.tile <= 4096):
             raise BadConfig(f"tile must be 0 or 32 to 4096 px with a square working size, got {self.tile}")
-        if not 1 <= self.memory_size <= 65536:
-            raise BadConfig(f"memory_size must be 1 to 65536, got {self.memory_size}")
+        if not 1 <= self.memory_size <= MAX_MEMORY_SIZE:
+            raise BadConfig(f"memory_size must be 1 to {MAX_MEMORY_SIZE}, got {self.memory_size}")
         if self.memory_pool not in MEMORY_POOLS:
             raise BadConfig(f"memory_pool must be one of {', '.join(map(str, MEMORY_POOLS))}, got {self.memory_pool}")
         for name in ("residual_shift", "perceptual_shift"):

@@ -20,7 +20,7 @@ import itertools
 
 import numpy as np
 import torch
-from knowngood.training.config import COMBINE_RULES, MEMORY_POOLS, TERM_FIELDS, ModelConfig
+from knowngood.training.config import COMBINE_RULES, MAX_MEMORY_SIZE, MEMORY_POOLS, TERM_FIELDS, ModelConfig
 from knowngood.training.scoring import ScoringGraph, images_per_pass
 from knowngood.training.synthetic import paste_defects
 from sklearn.metrics import roc_auc_score
@@ -41,7 +41,7 @@ def fine_memory_entries(memory_size: int, shape: tuple[int, int] | None) -> int:
     0.798 -> 0.832; at 128 px four times the entries did nothing (bracket 0.962 -> 0.961)."""
     h, w = shape or (FINE_MEMORY_AREA_SIDE, FINE_MEMORY_AREA_SIDE)
     factor = min(FINE_MEMORY_AREA_CAP, max(1.0, h * w / FINE_MEMORY_AREA_SIDE**2))
-    return min(65536, int(round(factor * memory_size)))
+    return min(MAX_MEMORY_SIZE, int(round(factor * memory_size)))
 
 
 def candidates(
@@ -55,7 +55,7 @@ def candidates(
     out = {f"pixel@{s}": {"pixel": 1.0, "residual_shift": s} for s in shifts}
     out |= {"critic": {"kappa": 1.0}, "perceptual": {"perceptual": 1.0}}
     for pool in MEMORY_POOLS:
-        size = fine_memory_entries(memory_size, shape) if pool == 1 else min(65536, pool * pool * memory_size)
+        size = fine_memory_entries(memory_size, shape) if pool == 1 else min(MAX_MEMORY_SIZE, pool * pool * memory_size)
         out[f"memory@{4 * pool}"] = {"memory": 1.0, "memory_pool": pool, "memory_size": size}
     return out | {"adversarial": {"adversarial": 1.0}}
 
