@@ -17,18 +17,15 @@ on the defect masks. Design evidence, not a target.
 
 from __future__ import annotations
 
-import argparse
-import json
 from pathlib import Path
 
 import numpy as np
-import torch
 from knowngood.training.data import to_model_input
 from knowngood.training.metrics import pixel_auroc
 from PIL import Image, ImageDraw, ImageFilter
 from sklearn.metrics import roc_auc_score
 
-from tests.bench import knowngood_runner
+from tests.bench import drawn_checks, knowngood_runner
 from tests.bench.peers import PatchMemoryPeer
 
 SIDE = 640
@@ -205,39 +202,34 @@ def measure(layout: str, minutes: float, out_dir: Path) -> dict:
         "train_seconds": round(run.train_seconds),
         "ms_per_image": round(ms, 1),
     }
-    for k, kind in enumerate(KINDS):
-        idx = np.r_[np.arange(N_GOOD), N_GOOD + np.arange(k, N_BAD, len(KINDS))]
-        result[f"knowngood_{kind}"] = round(float(roc_auc_score(labels[idx], np.asarray(scores)[idx])), 3)
-        result[f"patch_memory_{kind}"] = round(float(roc_auc_score(labels[idx], peer_scores[idx])), 3)
+    result |= drawn_checks.per_kind(labels, N_GOOD, KINDS, knowngood=scores, patch_memory=peer_scores)
     return result
 
 
-def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("layouts", nargs="*", help=f"any of {', '.join(LAYOUTS)} (default: both)")
-    ap.add_argument("--minutes", type=float, default=2.5)
-    ap.add_argument("--out", type=Path, default=Path("bench_out/lineart_check.json"))
-    ap.add_argument("--save", type=Path, help="write the first sheets of each layout as PNGs here, and stop")
-    args = ap.parse_args(argv)
-    unknown = sorted(set(args.layouts) - set(LAYOUTS))
-    if unknown:
-        ap.error(f"unknown layout(s) {', '.join(unknown)}; choose from {', '.join(LAYOUTS)}")
-    if args.save:
-        args.save.mkdir(parents=True, exist_ok=True)
-        for layout in args.layouts or LAYOUTS:
-            _, test, _, gt = build(layout)
-            for i in (0, 1, 40, 41, 42, 43, 44):
-                Image.fromarray((test[i][0] * 255).astype(np.uint8)).save(args.save / f"{layout}-{i}.png")
-                Image.fromarray(gt[i].astype(np.uint8) * 255).save(args.save / f"{layout}-{i}-mask.png")
-        return 0
-    torch.set_num_threads(2)
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    result = {}
-    for layout in args.layouts or LAYOUTS:
-        result[layout] = measure(layout, args.minutes, args.out.parent)
-        print(layout, json.dumps(result[layout]), flush=True)
-        args.out.write_text(json.dumps(result, indent=2))
+def _save(args) -> int | None:
+    """--save DIR: the first sheets of each layout and their masks as PNGs, instead of measuring."""
+    if not args.save:
+        return None
+    args.save.mkdir(parents=True, exist_ok=True)
+    for layout in args.names or LAYOUTS:
+        _, test, _, gt = build(layout)
+        for i in (0, 1, 40, 41, 42, 43, 44):
+            Image.fromarray((test[i][0] * 255).astype(np.uint8)).save(args.save / f"{layout}-{i}.png")
+            Image.fromarray(gt[i].astype(np.uint8) * 255).save(args.save / f"{layout}-{i}-mask.png")
     return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    return drawn_checks.main(
+        argv,
+        description=__doc__.splitlines()[0],
+        names=LAYOUTS,
+        what="layout",
+        measure=measure,
+        default_out=Path("bench_out/lineart_check.json"),
+        extra=lambda ap: ap.add_argument("--save", type=Path, help="write the first sheets as PNGs here, and stop"),
+        before=_save,
+    )
 
 
 if __name__ == "__main__":

@@ -18,18 +18,15 @@ README's levers, not a target.
 
 from __future__ import annotations
 
-import argparse
-import json
 from pathlib import Path
 
 import numpy as np
-import torch
 from knowngood.training.data import to_model_input
 from knowngood.training.metrics import pixel_auroc
 from PIL import Image, ImageDraw, ImageFilter
 from sklearn.metrics import roc_auc_score
 
-from tests.bench import knowngood_runner
+from tests.bench import drawn_checks, knowngood_runner
 from tests.bench.peers import PatchMemoryPeer
 
 CROP = 128
@@ -132,30 +129,19 @@ def measure(name: str, minutes: float, out_dir: Path) -> dict:
         "combine": choice["combine"],
         "train_seconds": round(run.train_seconds),  # train_bundle's wall time, as the bench reports it
     }
-    for k, kind in enumerate(KINDS):
-        idx = np.r_[np.arange(N_GOOD), N_GOOD + np.arange(k, N_BAD, len(KINDS))]
-        result[f"knowngood_{kind}"] = round(float(roc_auc_score(labels[idx], np.asarray(scores)[idx])), 3)
-        result[f"patch_memory_{kind}"] = round(float(roc_auc_score(labels[idx], peer_scores[idx])), 3)
+    result |= drawn_checks.per_kind(labels, N_GOOD, KINDS, knowngood=scores, patch_memory=peer_scores)
     return result
 
 
 def main(argv: list[str] | None = None) -> int:
-    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
-    ap.add_argument("names", nargs="*", help=f"any of {', '.join(PHOTOGRAPHS)} (default: all)")
-    ap.add_argument("--minutes", type=float, default=2.5)
-    ap.add_argument("--out", type=Path, default=Path("bench_out/texture_check.json"))
-    args = ap.parse_args(argv)
-    unknown = sorted(set(args.names) - set(PHOTOGRAPHS))
-    if unknown:
-        ap.error(f"unknown photograph(s) {', '.join(unknown)}; choose from {', '.join(PHOTOGRAPHS)}")
-    torch.set_num_threads(2)
-    args.out.parent.mkdir(parents=True, exist_ok=True)
-    result = {}
-    for name in args.names or PHOTOGRAPHS:
-        result[name] = measure(name, args.minutes, args.out.parent)
-        print(name, json.dumps(result[name]), flush=True)
-        args.out.write_text(json.dumps(result, indent=2))
-    return 0
+    return drawn_checks.main(
+        argv,
+        description=__doc__.splitlines()[0],
+        names=PHOTOGRAPHS,
+        what="photograph",
+        measure=measure,
+        default_out=Path("bench_out/texture_check.json"),
+    )
 
 
 if __name__ == "__main__":

@@ -13,8 +13,9 @@ from knowngood.training.metrics import image_auroc
 from knowngood.training.nets import build
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import TERMS, ScoringGraph
+from sklearn.metrics import roc_auc_score
 
-from tests.bench import lineart_check, speed, texture_check
+from tests.bench import drawn_checks, lineart_check, speed, texture_check
 from tests.bench.combination_levers import image_scores
 from tests.bench.memory import cycled, own_peak_rss_mib
 from tests.bench.peers import PatchMemoryPeer
@@ -108,6 +109,16 @@ def test_texture_check_draws_each_defect_kind_inside_its_mask():
         near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 9, 1, 4)[0]
         # more than 4 px from the mask only a stain's soft edge changes the crop (by a fraction of its centre's change)
         assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "stain" else 1e-6), kind
+
+
+def test_per_kind_auroc_takes_every_good_image_and_only_that_kinds_defective_ones():
+    # 3 good, then 4 defective of kinds a, b, a, b: kind a's images score above every good one, kind b's below
+    labels = np.r_[np.zeros(3), np.ones(4)]
+    scores = np.array([0.5, 0.6, 0.7, 0.9, 0.1, 0.8, 0.2])
+    out = drawn_checks.per_kind(labels, 3, ("a", "b"), mine=scores, other=-scores)
+    assert out == {"mine_a": 1.0, "other_a": 0.0, "mine_b": 0.0, "other_b": 1.0}
+    idx = [0, 1, 2, 4, 6]  # the literal subset for kind b (scikit-learn on it)
+    assert out["mine_b"] == round(roc_auc_score(labels[idx], scores[idx]), 3)
 
 
 def test_lineart_check_draws_each_defect_kind_inside_its_mask():
