@@ -5,12 +5,49 @@ from __future__ import annotations
 
 import argparse
 import json
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import numpy as np
 import torch
+from knowngood.training.data import to_model_input
+from knowngood.training.metrics import pixel_auroc
 from sklearn.metrics import roc_auc_score
+
+from tests.bench import knowngood_runner
+from tests.bench.peers import PatchMemoryPeer
+
+PEER_SIZE = 128  # the patch-memory peer's working size, as in the bench
+
+
+def test_set(good: Sequence[np.ndarray], bad: Sequence[np.ndarray], masks: Sequence[np.ndarray]):
+    """Good then defective (H, W) images -> (test images as (1, H, W), labels 0 / 1, masks: all False for the good)."""
+    labels = np.r_[np.zeros(len(good)), np.ones(len(bad))]
+    gt = [np.zeros(im.shape, bool) for im in good] + list(masks)
+    return [im[None] for im in [*good, *bad]], labels, gt
+
+
+def measure_set(train, test, labels, gt, bundle: Path, minutes: float, kinds: tuple[str, ...]) -> dict:
+    """knowngood trained as `train` does (`knowngood_runner.train`, its default working size) and the patch-memory
+    peer at `PEER_SIZE` on the same images: image AUROC overall and per defect kind, knowngood's pixel AUROC, what
+    the choice took, training seconds, ms per test image."""
+    run = knowngood_runner.train(train, bundle, minutes=minutes)
+    scores, heats, ms = knowngood_runner.score_images(run.detector, test)
+    peer = PatchMemoryPeer().fit(to_model_input(train, size=PEER_SIZE, channels=1))
+    peer_scores, _ = peer.score(to_model_input(test, size=PEER_SIZE, channels=1))
+    choice = run.detector.manifest["score"]["choice"]
+    result = {
+        "size": run.detector.cfg.size,
+        "knowngood": round(float(roc_auc_score(labels, scores)), 4),
+        "knowngood_pixel": round(float(pixel_auroc(gt, heats)), 4),
+        "patch_memory": round(float(roc_auc_score(labels, peer_scores)), 4),
+        "chosen": {k: w for k, w in choice["chosen"].items() if w > 0},
+        "combine": choice["combine"],
+        "train_seconds": round(run.train_seconds),  # train_bundle's wall time, as the bench reports it
+        "ms_per_image": round(ms, 1),
+    }
+    n_good = int((labels == 0).sum())
+    return result | per_kind(labels, n_good, kinds, knowngood=scores, patch_memory=peer_scores)
 
 
 def per_kind(labels: np.ndarray, n_good: int, kinds: tuple[str, ...], **scores) -> dict[str, float]:

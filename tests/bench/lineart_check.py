@@ -20,13 +20,9 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import to_model_input
-from knowngood.training.metrics import pixel_auroc
 from PIL import Image, ImageDraw, ImageFilter
-from sklearn.metrics import roc_auc_score
 
-from tests.bench import drawn_checks, knowngood_runner
-from tests.bench.peers import PatchMemoryPeer
+from tests.bench import drawn_checks
 
 SIDE = 640
 SS = 2  # drawn at 2x and averaged down: anti-aliased strokes
@@ -172,38 +168,13 @@ def build(layout: str, seed: int = 0):
 
     train = [_sheet(drawing(), rng, None)[0] for _ in range(N_TRAIN)]
     good = [_sheet(drawing(), rng, None)[0] for _ in range(N_GOOD)]
-    bad, masks = [], []
-    for i in range(N_BAD):
-        img, m = _sheet(drawing(), rng, KINDS[i % len(KINDS)])
-        bad.append(img)
-        masks.append(m)
-    labels = np.r_[np.zeros(N_GOOD), np.ones(N_BAD)]
-    gt = [np.zeros((SIDE, SIDE), bool)] * N_GOOD + masks
-    return [c[None] for c in train], [c[None] for c in good + bad], labels, gt
+    bad, masks = zip(*(_sheet(drawing(), rng, KINDS[i % len(KINDS)]) for i in range(N_BAD)))
+    return [c[None] for c in train], *drawn_checks.test_set(good, bad, masks)
 
 
 def measure(layout: str, minutes: float, out_dir: Path) -> dict:
     train, test, labels, gt = build(layout)
-    run = knowngood_runner.train(train, out_dir / f"lineart-{layout}.kgm", minutes=minutes)
-    scores, heats, ms = knowngood_runner.score_images(run.detector, test)
-    peer_scores, _ = (
-        PatchMemoryPeer()
-        .fit(to_model_input(train, size=128, channels=1))
-        .score(to_model_input(test, size=128, channels=1))
-    )
-    choice = run.detector.manifest["score"]["choice"]
-    result = {
-        "size": run.detector.cfg.size,
-        "knowngood": round(float(roc_auc_score(labels, scores)), 4),
-        "knowngood_pixel": round(float(pixel_auroc(gt, heats)), 4),
-        "patch_memory_128": round(float(roc_auc_score(labels, peer_scores)), 4),
-        "chosen": {k: w for k, w in choice["chosen"].items() if w > 0},
-        "combine": choice["combine"],
-        "train_seconds": round(run.train_seconds),
-        "ms_per_image": round(ms, 1),
-    }
-    result |= drawn_checks.per_kind(labels, N_GOOD, KINDS, knowngood=scores, patch_memory=peer_scores)
-    return result
+    return drawn_checks.measure_set(train, test, labels, gt, out_dir / f"lineart-{layout}.kgm", minutes, KINDS)
 
 
 def _save(args) -> int | None:

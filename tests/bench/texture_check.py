@@ -21,13 +21,9 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import to_model_input
-from knowngood.training.metrics import pixel_auroc
 from PIL import Image, ImageDraw, ImageFilter
-from sklearn.metrics import roc_auc_score
 
-from tests.bench import drawn_checks, knowngood_runner
-from tests.bench.peers import PatchMemoryPeer
+from tests.bench import drawn_checks
 
 CROP = 128
 TRAIN_ROWS, TEST_ROWS = (0, 320), (320, 512)
@@ -104,33 +100,14 @@ def build(name: str, seed: int = 0):
     img, other = photograph(name), photograph(FOREIGN[name])
     train = crops(img, N_TRAIN, TRAIN_ROWS, rng)
     good = crops(img, N_GOOD, TEST_ROWS, rng)
-    bad, masks = [], []
-    for i, c in enumerate(crops(img, N_BAD, TEST_ROWS, rng)):
-        out, mask = draw_defect(c, KINDS[i % len(KINDS)], rng, other)
-        bad.append(out)
-        masks.append(mask)
-    labels = np.r_[np.zeros(N_GOOD), np.ones(N_BAD)]
-    gt = [np.zeros((CROP, CROP), bool)] * N_GOOD + masks
-    return [c[None] for c in train], [c[None] for c in good + bad], labels, gt
+    defective = crops(img, N_BAD, TEST_ROWS, rng)
+    bad, masks = zip(*(draw_defect(c, KINDS[i % len(KINDS)], rng, other) for i, c in enumerate(defective)))
+    return [c[None] for c in train], *drawn_checks.test_set(good, bad, masks)
 
 
 def measure(name: str, minutes: float, out_dir: Path) -> dict:
     train, test, labels, gt = build(name)
-    run = knowngood_runner.train(train, out_dir / f"texture-{name}.kgm", minutes=minutes)
-    scores, heats, _ = knowngood_runner.score_images(run.detector, test)
-    x_train = to_model_input(train, size=CROP, channels=1)
-    peer_scores, _ = PatchMemoryPeer().fit(x_train).score(to_model_input(test, size=CROP, channels=1))
-    choice = run.detector.manifest["score"]["choice"]
-    result = {
-        "knowngood": round(float(roc_auc_score(labels, scores)), 4),
-        "knowngood_pixel": round(float(pixel_auroc(gt, heats)), 4),
-        "patch_memory": round(float(roc_auc_score(labels, peer_scores)), 4),
-        "chosen": {k: w for k, w in choice["chosen"].items() if w > 0},
-        "combine": choice["combine"],
-        "train_seconds": round(run.train_seconds),  # train_bundle's wall time, as the bench reports it
-    }
-    result |= drawn_checks.per_kind(labels, N_GOOD, KINDS, knowngood=scores, patch_memory=peer_scores)
-    return result
+    return drawn_checks.measure_set(train, test, labels, gt, out_dir / f"texture-{name}.kgm", minutes, KINDS)
 
 
 def main(argv: list[str] | None = None) -> int:
