@@ -13,6 +13,8 @@ from knowngood.training.config import ModelConfig
 from knowngood.training.data import to_model_input
 from knowngood.training.scoring import ScoringGraph, images_per_pass, resize_maps
 
+INSPECTION_PASS_BYTES = 64 * 2**20  # the memory term's distance matrix in one forward pass of inspection
+
 
 @dataclass(frozen=True)
 class Prepared:
@@ -75,7 +77,7 @@ class Detector:
     def batch_size(self) -> int:
         """Images per forward pass: 32, fewer where the memory term's distance matrix (positions x entries)
         would pass about 64 MB."""
-        return images_per_pass(self.cfg, most=32, budget=64 * 2**20)
+        return images_per_pass(self.cfg, most=32, budget=INSPECTION_PASS_BYTES)
 
     @torch.inference_mode()
     def score_and_embed(self, x: torch.Tensor, batch: int | None = None) -> tuple[np.ndarray, torch.Tensor, np.ndarray]:

@@ -121,10 +121,10 @@ def candidate_graphs(
 
 
 @torch.no_grad()
-def _z_maps(graph: ScoringGraph, x: torch.Tensor, batch: int | None = None) -> torch.Tensor:
+def _z_maps(graph: ScoringGraph, x: torch.Tensor) -> torch.Tensor:
     """(N, H, W) standardised map of a one-term graph, in passes of at most 8 images (`images_per_pass`)."""
     graph.eval()
-    batch = batch or images_per_pass(graph.cfg, most=8)
+    batch = images_per_pass(graph.cfg, most=8)  # as `fit_standardisation`
     parts = []
     for i in range(0, len(x), batch):
         maps = graph.term_maps(x[i : i + batch])
