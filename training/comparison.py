@@ -20,6 +20,7 @@ from sklearn import metrics as skm
 matplotlib.use("Agg")  # files only, never a window; must precede the pyplot import
 import matplotlib.pyplot as plt  # noqa: E402
 from knowngood.training.detector import Detector  # noqa: E402
+from knowngood.training.holdout import score_holdout  # noqa: E402
 from knowngood.training.report import HoldoutResult, metrics_summary, rate_text  # noqa: E402
 from knowngood.training.tuning import Rate, ThresholdChoice  # noqa: E402
 
@@ -51,10 +52,8 @@ def compare_models(
 ) -> Comparison:
     """Scores `holdout`'s images with `old` too and puts the tuned model (its `summary`, from the same holdout)
     beside it. The old model flags at the threshold its bundle holds; the rates are counted on this holdout."""
-    results = old.inspect(holdout.images)
-    again = dataclasses.replace(
-        holdout, scores=np.array([r.score for r in results]), heatmaps=[r.heatmap for r in results]
-    )
+    scores, heatmaps = score_holdout(old, holdout.images)
+    again = dataclasses.replace(holdout, scores=scores, heatmaps=heatmaps)
     old_summary = metrics_summary(again, own_threshold(old, again))
     return Comparison(
         new=_side(tuned, tuned_path, summary),

@@ -6,11 +6,51 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import min_side_for, read_image
+from knowngood.training.data import min_side_for, read_image, resized
 from knowngood.training.detector import Detector
 from knowngood.training.errors import BadDataset, BadImage
 from knowngood.training.folders import ImageFiles, list_images, load_folder
 from knowngood.training.report import HoldoutResult
+
+MAP_PIXELS = 2**20  # the most pixels of a heatmap (and its mask) the holdout holds per image
+SCORE_CHUNK = 16  # images scored per pass: a pass's native heatmaps are held until they are reduced
+
+
+def held_shape(shape: tuple[int, int]) -> tuple[int, int]:
+    """(H, W) of the heatmap the holdout holds for an image of (H, W) `shape`: its own up to `MAP_PIXELS` pixels,
+    else reduced to about `MAP_PIXELS` with the aspect ratio kept. A 5 MP image's float32 map is 20 MB: 100 of
+    them, twice with `tune --compare`, were 4 GB before any metric; at 1 MP a defect of 10-30 px stays 4-14 px."""
+    h, w = shape
+    if h * w <= MAP_PIXELS:
+        return (h, w)
+    scale = (MAP_PIXELS / (h * w)) ** 0.5
+    return (max(1, round(h * scale)), max(1, round(w * scale)))
+
+
+def held_map(heat: np.ndarray) -> np.ndarray:
+    """A heatmap as the holdout holds it (`held_shape`): reduced by the one resize inputs get (antialiased)."""
+    shape = held_shape(heat.shape)
+    return heat if shape == heat.shape else resized(heat[None], shape)[0]
+
+
+def held_mask(mask: np.ndarray | None) -> np.ndarray | None:
+    """A mask at its image's `held_shape`: a reduced pixel is a defect pixel when defects cover a quarter of it,
+    so a 1 px scratch survives a reduction by 2-3x (a 5 MP image's)."""
+    if mask is None or held_shape(mask.shape) == mask.shape:
+        return mask
+    return resized(mask[None].astype(np.float32), held_shape(mask.shape))[0] >= 0.25
+
+
+def score_holdout(det: Detector, images) -> tuple[np.ndarray, list[np.ndarray]]:
+    """Scores and held heatmaps (`held_map`) of `images` (a list, or `ImageFiles`), `SCORE_CHUNK` at a time, so
+    at most one pass's native heatmaps are held at once."""
+    scores, maps = [], []
+    for start in range(0, len(images), SCORE_CHUNK):
+        idx = range(start, min(len(images), start + SCORE_CHUNK))
+        for r in det.inspect(images.take(idx) if isinstance(images, ImageFiles) else [images[i] for i in idx]):
+            scores.append(r.score)
+            maps.append(held_map(r.heatmap))
+    return np.array(scores), maps
 
 
 def defect_class(path: Path, defective_dir: Path) -> str:
@@ -34,7 +74,9 @@ def load_holdout(
 ) -> HoldoutResult:
     """Reads and scores the whole holdout as batches. Labels: 0 good, 1 defective. Images are held to the
     model's smallest side (`min_side_for`), as the service holds them. Each image is decoded to check it, then
-    left in its file (`ImageFiles`) until it is scored or shown: only the heatmaps and masks are held."""
+    left in its file (`ImageFiles`) until it is scored or shown: only the heatmaps and masks are held, those of
+    images over `MAP_PIXELS` reduced to about that many pixels (`held_shape`), so the pixel metrics of
+    multi-megapixel images are measured at about 1 MP."""
     limits = {"min_side": min_side_for(det.cfg.size)}
     good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
     bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
@@ -49,18 +91,18 @@ def load_holdout(
         m = find_mask(path, defective_dir, masks_dir)
         if m is not None and m.shape != (h, w):
             raise BadImage(f"{path}: mask is {m.shape[1]} x {m.shape[0]}, image is {w} x {h}")
-        masks.append(m)
+        masks.append(held_mask(m))
     if masks_dir is not None and all(m is None for m in masks):
         raise BadDataset(f"{masks_dir}: no mask matches any defective image (same relative path and stem)")
     images = ImageFiles(good.paths + bad.paths, limits)
-    results = det.inspect(images)
+    scores, heatmaps = score_holdout(det, images)
     return HoldoutResult(
         paths=good.paths + bad.paths,
         labels=np.array([0] * len(good.images) + [1] * len(bad.images)),
         classes=["good"] * len(good.images) + [defect_class(p, defective_dir) for p in bad.paths],
-        scores=np.array([r.score for r in results]),
+        scores=scores,
         images=images,
-        heatmaps=[r.heatmap for r in results],
+        heatmaps=heatmaps,
         masks=masks,
         skipped=good.skipped + bad.skipped,
     )

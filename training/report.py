@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 from knowngood.training import __version__
 from knowngood.training import report_plots as plot
+from knowngood.training.data import resized
 from knowngood.training.heatmap import overlay_png
 from knowngood.training.metrics import average_precision, image_auroc, pixel_auroc, pro_score
 from knowngood.training.tuning import Rate, ThresholdChoice, per_class_catch
@@ -157,6 +158,8 @@ def _gallery(out: Path, h: HoldoutResult, t: float) -> dict[str, list[dict]]:
         for n, i in enumerate(idx, 1):
             stem = f"{kind}_{n:02d}"
             image = h.images[i]  # decoded here, once (a holdout's images may stay in their files)
+            if image.shape[-2:] != h.heatmaps[i].shape:  # a multi-megapixel image's map is held at about 1 MP
+                image = resized(np.ascontiguousarray(image, dtype=np.float32), h.heatmaps[i].shape)
             pictures = {"image": _to_uint8(image), "heatmap": overlay_png(image, h.heatmaps[i], vmax)}
             if h.masks[i] is not None:
                 pictures["mask"] = Image.fromarray(np.asarray(h.masks[i], dtype=np.uint8) * 255)

@@ -356,3 +356,42 @@ def test_the_holdout_stays_in_its_files_and_scores_as_its_decoded_images(tiny_bu
     write_report(tmp_path / "r", holdout, choice, title="t", model_info={})
     shown = list((tmp_path / "r" / "gallery").glob("*_image.png"))
     assert len(shown) == int((holdout.scores[:3] > choice.value).sum() + (holdout.scores[3:] <= choice.value).sum())
+
+
+def test_a_multi_megapixel_holdout_holds_its_heatmaps_and_masks_at_about_the_map_limit(
+    tiny_bundle, tmp_path, monkeypatch
+):
+    """`load_holdout` holds each heatmap of an image over `MAP_PIXELS` reduced to about that many pixels, aspect
+    ratio kept, and its mask at the same shape, a 1 px scratch kept; scores are those of the whole images, the same
+    as `Detector.inspect`'s, and the gallery shows the image at its map's size. (The limit is lowered here so
+    small files stand for 5 MP ones.)"""
+    from knowngood.training import holdout as hold
+    from knowngood.training.data import read_image
+
+    monkeypatch.setattr(hold, "MAP_PIXELS", 48 * 64)
+    monkeypatch.setattr(hold, "SCORE_CHUNK", 2)  # more than one pass over the five images
+    det = bundle.load(tiny_bundle)[0]
+    rng = np.random.default_rng(3)
+    root = tmp_path / "holdout"
+    for i in range(5):
+        folder = root / ("good" if i < 2 else "defective/scratch")
+        folder.mkdir(parents=True, exist_ok=True)
+        Image.fromarray(rng.integers(60, 190, (120, 160), dtype=np.uint8)).save(folder / f"{i}.png")
+        if i >= 2:
+            mask = np.zeros((120, 160), np.uint8)
+            mask[40 + 10 * (i - 2), 30:130] = 255  # a 1 px scratch, 100 px long
+            (root / "masks/scratch").mkdir(parents=True, exist_ok=True)
+            Image.fromarray(mask).save(root / "masks/scratch" / f"{i}.png")
+    h = hold.load_holdout(det, root / "good", root / "defective", root / "masks")
+    want = det.inspect([read_image(p, min_side=1) for p in h.paths])
+    # scored whole, as the service scores them (passes of 2 and of 5 images agree to float32 rounding)
+    assert np.allclose(h.scores, [r.score for r in want], rtol=1e-5, atol=0)
+    assert all(m.shape == (48, 64) for m in h.heatmaps)  # 120 x 160 = 6.25 x the limit: 2.5 x smaller each side
+    assert [None if m is None else m.shape for m in h.masks] == [None, None] + [(48, 64)] * 3
+    for m in h.masks[2:]:
+        assert 30 <= m.sum() <= 2 * 40  # the 100 px scratch at 1 / 2.5 scale: about 40 px, not lost, not smeared
+    full = want[0].heatmap
+    assert np.allclose(h.heatmaps[0].mean(), full.mean(), rtol=0.05)  # the same map, reduced
+    choice = threshold_for_false_reject(h.scores[:2], h.scores[2:], 0.5)
+    write_report(tmp_path / "r", h, choice, title="t", model_info={})  # the gallery reduces the image to its map
+    assert list((tmp_path / "r" / "gallery").glob("*_heatmap.png"))
