@@ -105,4 +105,5 @@ def load_holdout(
         heatmaps=heatmaps,
         masks=masks,
         skipped=good.skipped + bad.skipped,
+        maps_reduced=sum(held_shape(shape) != shape for shape in good.shapes + bad.shapes),
     )

@@ -49,6 +49,7 @@ class HoldoutResult:
     heatmaps: list[np.ndarray]  # (H, W) float32, same units as scores
     masks: list[np.ndarray | None]  # (H, W) bool or None
     skipped: list[tuple[Path, str]] = field(default_factory=list)  # unreadable images left out (--skip-bad)
+    maps_reduced: int = 0  # images over 1 MP whose heatmap and mask are held at about 1 MP (`holdout.held_shape`)
 
 
 def pixel_sets(h: HoldoutResult) -> tuple[list, list] | None:
@@ -85,7 +86,7 @@ def metrics_summary(holdout: HoldoutResult, choice: ThresholdChoice) -> dict:
         "pixel_auroc": pixel_auroc(*pix) if has_pix else None,
         "pro": pro_score(*pix, max_fpr=PRO_MAX_FPR) if has_pix else None,
         "pro_max_fpr": PRO_MAX_FPR,
-        "masks": {"with_mask": masked, "defective": len(bad)} if masked else None,
+        "masks": {"with_mask": masked, "defective": len(bad), "maps_reduced": holdout.maps_reduced} if masked else None,
         "threshold": choice.to_dict(),
         "false_reject": asdict(Rate.of(int((good > t).sum()), len(good))) if len(good) else None,
         "catch": asdict(Rate.of(int((bad > t).sum()), len(bad))) if len(bad) else None,
@@ -98,7 +99,12 @@ def metrics_summary(holdout: HoldoutResult, choice: ThresholdChoice) -> dict:
 def mask_coverage(m: dict) -> str:
     """'from masks of k of n defective images': what the pixel metrics of summary `m` rest on."""
     masks = m["masks"]
-    return "" if masks is None else f"from masks of {masks['with_mask']} of {masks['defective']} defective images"
+    if masks is None:
+        return ""
+    text = f"from masks of {masks['with_mask']} of {masks['defective']} defective images"
+    if masks.get("maps_reduced"):
+        text += f"; {masks['maps_reduced']} images over 1 megapixel measured at about 1 megapixel"
+    return text
 
 
 def holdout_warnings(m: dict) -> list[str]:

@@ -105,7 +105,7 @@ def test_tune_sets_threshold_and_writes_report(trained, scenario, tmp_path, caps
     assert det.manifest["threshold"]["method"] == summary["threshold"]["method"]
     assert det.threshold == pytest.approx(summary["threshold"]["value"])
     assert summary["catch"]["rate"] >= 0.5 and summary["pixel_auroc"] is not None
-    assert summary["masks"] == {"with_mask": 10, "defective": 10}  # every defective image has its mask
+    assert summary["masks"] == {"with_mask": 10, "defective": 10, "maps_reduced": 0}  # every one masked, none over 1 MP
     assert (summary["model_id"], summary["revision"]) == (det.model_id, det.revision)
     assert det.revision != bundle.load(trained)[0].revision  # a new threshold is a new revision of one model
     assert (report / "index.html").exists() and (report / "roc.png").exists()

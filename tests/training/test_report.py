@@ -255,11 +255,13 @@ def test_summary_warns_about_a_swapped_holdout_and_few_masks(tmp_path):
     h = _holdout()
     choice = threshold_for_false_reject(h.scores[h.labels == 0], h.scores[h.labels == 1], 0.1)
     m = metrics_summary(h, choice)
-    assert m["masks"] == {"with_mask": 7, "defective": 8} and m["warnings"] == []  # 7 of 8: nothing doubtful
+    assert (
+        m["masks"] == {"with_mask": 7, "defective": 8, "maps_reduced": 0} and m["warnings"] == []
+    )  # 7 of 8: nothing doubtful
     h.scores = -h.scores  # defective now score lower than good: as if the folders were swapped
     h.masks = [mask if i < 15 else None for i, mask in enumerate(h.masks)]  # masks for 3 of the 8 defective
     m = metrics_summary(h, threshold_for_false_reject(h.scores[h.labels == 0], h.scores[h.labels == 1], 0.1))
-    assert m["image_auroc"] < 0.5 and m["masks"] == {"with_mask": 3, "defective": 8}
+    assert m["image_auroc"] < 0.5 and m["masks"] == {"with_mask": 3, "defective": 8, "maps_reduced": 0}
     assert len(m["warnings"]) == 2
     assert "below 0.5" in m["warnings"][0] and "swapped" in m["warnings"][0]
     assert "from masks of 3 of 8 defective images, fewer than half" in m["warnings"][1]
@@ -393,5 +395,7 @@ def test_a_multi_megapixel_holdout_holds_its_heatmaps_and_masks_at_about_the_map
     full = want[0].heatmap
     assert np.allclose(h.heatmaps[0].mean(), full.mean(), rtol=0.05)  # the same map, reduced
     choice = threshold_for_false_reject(h.scores[:2], h.scores[2:], 0.5)
-    write_report(tmp_path / "r", h, choice, title="t", model_info={})  # the gallery reduces the image to its map
+    page = write_report(tmp_path / "r", h, choice, title="t", model_info={})  # the gallery reduces the image
     assert list((tmp_path / "r" / "gallery").glob("*_heatmap.png"))
+    assert h.maps_reduced == 5  # and the report says at which scale the pixel metrics were measured
+    assert "5 images over 1 megapixel measured at about 1 megapixel" in page.read_text()
