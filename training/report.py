@@ -96,13 +96,14 @@ def metrics_summary(holdout: HoldoutResult, choice: ThresholdChoice) -> dict:
     return m
 
 
-def mask_coverage(m: dict) -> str:
-    """'from masks of k of n defective images': what the pixel metrics of summary `m` rest on."""
+def mask_coverage(m: dict, *, scale: bool = True) -> str:
+    """'from masks of k of n defective images': what the pixel metrics of summary `m` rest on; with `scale`, how
+    many images were measured at about 1 MP."""
     masks = m["masks"]
     if masks is None:
         return ""
     text = f"from masks of {masks['with_mask']} of {masks['defective']} defective images"
-    if masks.get("maps_reduced"):
+    if scale and masks.get("maps_reduced"):
         text += f"; {masks['maps_reduced']} images over 1 megapixel measured at about 1 megapixel"
     return text
 
@@ -120,8 +121,8 @@ def holdout_warnings(m: dict) -> list[str]:
     masks = m["masks"]
     if masks is not None and masks["with_mask"] < masks["defective"] / 2:
         out.append(
-            f"pixel AUROC and PRO {mask_coverage(m)}, fewer than half: masks match a defective image by its "
-            "relative path and stem"
+            f"pixel AUROC and PRO {mask_coverage(m, scale=False)}, fewer than half: masks match a defective image "
+            "by its relative path and stem"
         )
     return out
 
