@@ -79,7 +79,14 @@ def _add_tune(sub) -> None:
     p.add_argument("model", type=Path, metavar="MODEL")
     p.add_argument("--good", type=Path, required=True, metavar="DIR")
     p.add_argument("--defective", type=Path, required=True, metavar="DIR")
-    p.add_argument("--masks", type=Path, default=None, metavar="DIR")
+    p.add_argument(
+        "--masks",
+        type=Path,
+        default=None,
+        metavar="DIR",
+        help="defect masks (white = defect) for the pixel metrics: defective/dent/3.png's mask is DIR/dent/3.png, or "
+        "3_mask.png, 3-mask.png or 3_gt.png (any image suffix)",
+    )
     target = p.add_mutually_exclusive_group()
     target.add_argument("--target-false-reject", type=float, default=None, metavar="A")
     target.add_argument("--target-catch", type=float, default=None, metavar="C")

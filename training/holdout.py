@@ -6,10 +6,10 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import min_side_for, read_image, resized
+from knowngood.training.data import IMAGE_SUFFIXES, min_side_for, read_image, resized
 from knowngood.training.detector import Detector
 from knowngood.training.errors import BadDataset, BadImage
-from knowngood.training.folders import ImageFiles, list_images, load_folder
+from knowngood.training.folders import ImageFiles, load_folder
 from knowngood.training.report import HoldoutResult
 
 MAP_PIXELS = 2**20  # the most pixels of a heatmap (and its mask) the holdout holds per image
@@ -58,14 +58,22 @@ def defect_class(path: Path, defective_dir: Path) -> str:
     return rel.parts[0] if len(rel.parts) > 1 else "defective"
 
 
+MASK_SUFFIXES = ("", "_mask", "-mask", "_gt")  # a mask's stem: the image's, or the image's with one of these
+
+
 def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.ndarray | None:
-    """The mask with the same relative path and stem (any image suffix), as a bool (H, W) array, or None."""
+    """The mask with the same relative path and stem (any image suffix), or that stem followed by one of
+    `MASK_SUFFIXES` (`crack/007.png` -> `crack/007_mask.png`, as many labelling tools write them), as a bool (H, W)
+    array, or None. The plain stem wins where both exist."""
     if masks_dir is None:
         return None
     rel = path.relative_to(defective_dir).with_suffix("")
-    for candidate in list_images(masks_dir / rel.parent) if (masks_dir / rel.parent).is_dir() else []:
-        if candidate.stem == rel.name:
-            return read_image(candidate).max(0) > 0.5
+    folder = masks_dir / rel.parent
+    files = folder.iterdir() if folder.is_dir() else ()
+    by_stem = {c.stem: c for c in files if c.suffix.lower() in IMAGE_SUFFIXES and c.is_file()}
+    for suffix in MASK_SUFFIXES:
+        if rel.name + suffix in by_stem:
+            return read_image(by_stem[rel.name + suffix]).max(0) > 0.5
     return None
 
 
@@ -93,7 +101,10 @@ def load_holdout(
             raise BadImage(f"{path}: mask is {m.shape[1]} x {m.shape[0]}, image is {w} x {h}")
         masks.append(held_mask(m))
     if masks_dir is not None and all(m is None for m in masks):
-        raise BadDataset(f"{masks_dir}: no mask matches any defective image (same relative path and stem)")
+        raise BadDataset(
+            f"{masks_dir}: no mask matches any defective image (same relative path and stem, or the stem followed "
+            "by _mask, -mask or _gt)"
+        )
     images = ImageFiles(good.paths + bad.paths, limits)
     scores, heatmaps = score_holdout(det, images)
     return HoldoutResult(

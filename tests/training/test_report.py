@@ -399,3 +399,33 @@ def test_a_multi_megapixel_holdout_holds_its_heatmaps_and_masks_at_about_the_map
     assert list((tmp_path / "r" / "gallery").glob("*_heatmap.png"))
     assert h.maps_reduced == 5  # and the report says at which scale the pixel metrics were measured
     assert "5 images over 1 megapixel measured at about 1 megapixel" in page.read_text()
+
+
+def test_a_mask_is_found_by_its_image_stem_or_that_stem_with_a_mask_suffix(tmp_path):
+    """`find_mask`: masks/dent/3.png or masks/dent/3_mask.png (the name many labelling tools and public datasets
+    write, e.g. the open MVTec AD layout, `ground_truth/<class>/000_mask.png`) belongs to defective/dent/3.jpg; the
+    plain stem wins where both exist; a mask of another folder or another stem does not match; nothing is found
+    without a masks folder."""
+    from knowngood.training.holdout import find_mask
+
+    defective, masks = tmp_path / "defective", tmp_path / "masks"
+
+    def save(path: Path, rows: slice) -> None:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        m = np.zeros((16, 20), np.uint8)
+        m[rows] = 255
+        Image.fromarray(m).save(path)
+
+    save(masks / "dent/3_mask.png", slice(0, 2))
+    save(masks / "dent/4.png", slice(0, 2))
+    save(masks / "dent/4_mask.png", slice(0, 6))
+    save(masks / "dent/5-mask.bmp", slice(2, 3))
+    save(masks / "dent/deeper/6.png", slice(0, 2))  # not dent/6's: another folder
+    save(masks / "scratch/7_mask.png", slice(0, 2))  # not dent/7's
+    save(masks / "dent/77_mask.png", slice(0, 2))  # not dent/7's: another stem
+    found = {n: find_mask(defective / f"dent/{n}.jpg", defective, masks) for n in (3, 4, 5, 6, 7)}
+    assert found[3].shape == (16, 20) and found[3].sum() == 40
+    assert found[4].sum() == 40  # 4.png, not 4_mask.png (120 px)
+    assert found[5].sum() == 20 and found[5].dtype == bool
+    assert found[6] is None and found[7] is None
+    assert find_mask(defective / "dent/3.jpg", defective, None) is None
