@@ -78,7 +78,13 @@ def _add_tune(sub) -> None:
     p = sub.add_parser("tune", help="set the threshold from a labelled holdout and write the report")
     p.add_argument("model", type=Path, metavar="MODEL")
     p.add_argument("--good", type=Path, required=True, metavar="DIR")
-    p.add_argument("--defective", type=Path, required=True, metavar="DIR")
+    p.add_argument(
+        "--defective",
+        type=Path,
+        required=True,
+        metavar="DIR",
+        help="defective images; a subfolder's name is the defect class; a --good folder inside DIR is left out",
+    )
     p.add_argument(
         "--masks",
         type=Path,

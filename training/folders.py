@@ -96,14 +96,18 @@ def load_folder(
     min_count: int = 1,
     shape: tuple[int, int] | None = None,
     in_files: bool = False,
+    exclude: Path | None = None,
     **limits,
 ) -> ImageSet:
-    """Reads every image under `folder` (`limits`: as `decode_image`'s). An unreadable file is an error naming it,
-    or skipped and reported. With `shape` (H, W), each image is reduced to it (`resized`) as soon as it is decoded;
-    with `in_files`, each is decoded to check it and then left in its file (`ImageFiles`). Either way only one
-    image at a time is held at full resolution."""
+    """Reads every image under `folder`, except those under `exclude` (`limits`: as `decode_image`'s). An
+    unreadable file is an error naming it, or skipped and reported. With `shape` (H, W), each image is reduced to it
+    (`resized`) as soon as it is decoded; with `in_files`, each is decoded to check it and then left in its file
+    (`ImageFiles`). Either way only one image at a time is held at full resolution."""
     paths, images, shapes, colours, skipped = [], [], [], [], []
+    left_out = Path(exclude).resolve() if exclude is not None else None
     for path in list_images(folder):
+        if left_out is not None and path.resolve().is_relative_to(left_out):
+            continue
         try:
             arr = read_image(path, **limits)
         except BadImage as exc:

@@ -87,7 +87,8 @@ def load_holdout(
     multi-megapixel images are measured at about 1 MP."""
     limits = {"min_side": min_side_for(det.cfg.size)}
     good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
-    bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
+    # a holdout laid out as test/good + test/<defect class>/ may be given as --good test/good --defective test
+    bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, exclude=good_dir, **limits)
     for option, folder, found in (("--good", good_dir, good), ("--defective", defective_dir, bad)):
         if not found.images:  # before any scoring: the threshold and the report need both kinds
             skipped = f" ({len(found.skipped)} unreadable, skipped)" if found.skipped else ""

@@ -429,3 +429,26 @@ def test_a_mask_is_found_by_its_image_stem_or_that_stem_with_a_mask_suffix(tmp_p
     assert found[5].sum() == 20 and found[5].dtype == bool
     assert found[6] is None and found[7] is None
     assert find_mask(defective / "dent/3.jpg", defective, None) is None
+
+
+def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_images(tiny_bundle, tmp_path):
+    """A holdout laid out as test/good/ beside test/<defect class>/ (with masks named <stem>_mask.png), given as
+    --good test/good --defective test: the good images are good only, never a defect class "good"."""
+    from knowngood.training.holdout import load_holdout
+
+    det = bundle.load(tiny_bundle)[0]
+    rng = np.random.default_rng(5)
+    test = tmp_path / "test"
+    for folder, n in (("good", 3), ("dent", 2), ("scratch", 2)):
+        (test / folder).mkdir(parents=True)
+        for i in range(n):
+            Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(test / folder / f"{i:03d}.png")
+            if folder != "good":
+                (tmp_path / "ground_truth" / folder).mkdir(parents=True, exist_ok=True)
+                mask = np.zeros((32, 32), np.uint8)
+                mask[4:9, 4:9] = 255
+                Image.fromarray(mask).save(tmp_path / "ground_truth" / folder / f"{i:03d}_mask.png")
+    h = load_holdout(det, test / "good", test, tmp_path / "ground_truth")
+    assert list(h.labels) == [0, 0, 0, 1, 1, 1, 1]
+    assert h.classes[3:] == ["dent", "dent", "scratch", "scratch"]
+    assert [None if m is None else int(m.sum()) for m in h.masks] == [None, None, None, 25, 25, 25, 25]
