@@ -64,7 +64,7 @@ MASK_SUFFIXES = ("", "_mask", "-mask", "_gt")  # a mask's stem: the image's, or 
 def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.ndarray | None:
     """The mask with the same relative path and stem (any image suffix), or that stem followed by one of
     `MASK_SUFFIXES` (`crack/007.png` -> `crack/007_mask.png`, as many labelling tools write them), as a bool (H, W)
-    array, or None. The plain stem wins where both exist."""
+    array (`mask_pixels`), or None. The plain stem wins where both exist."""
     if masks_dir is None:
         return None
     rel = path.relative_to(defective_dir).with_suffix("")
@@ -73,8 +73,17 @@ def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.nda
     by_stem = {c.stem: c for c in files if c.suffix.lower() in IMAGE_SUFFIXES and c.is_file()}
     for suffix in MASK_SUFFIXES:
         if rel.name + suffix in by_stem:
-            return read_image(by_stem[rel.name + suffix]).max(0) > 0.5
+            return mask_pixels(read_image(by_stem[rel.name + suffix]))
     return None
+
+
+def mask_pixels(mask: np.ndarray) -> np.ndarray:
+    """A decoded mask (C, H, W) in [0, 1] -> bool (H, W): defect where it is brighter than half its own maximum, so
+    masks written 0 / 255 and masks written 0 / 1 (label images, 8 or 16 bit) both work; an all-black mask is
+    no defect pixel."""
+    m = mask.max(0)
+    top = float(m.max())
+    return m > top / 2 if top > 0 else np.zeros(m.shape, bool)
 
 
 def load_holdout(

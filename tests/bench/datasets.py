@@ -53,8 +53,9 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
-from knowngood.training.data import read_image, to_model_input
-from knowngood.training.folders import list_images, load_folder
+from knowngood.training.data import to_model_input
+from knowngood.training.folders import load_folder
+from knowngood.training.holdout import find_mask
 from PIL import Image
 
 ELPV = {
@@ -196,12 +197,10 @@ def demo_root(cache: Path, seed: int = 0) -> Path:
 
 
 def _mask_for(path: Path, defective: Path, masks: Path) -> np.ndarray:
-    rel = path.relative_to(defective).with_suffix("")
-    folder = masks / rel.parent
-    for candidate in list_images(folder) if folder.is_dir() else []:
-        if candidate.stem == rel.name:
-            return read_image(candidate).max(0) > 0.5
-    raise FileNotFoundError(f"{path}: no mask with the same stem under {folder}")
+    mask = find_mask(path, defective, masks)  # as `tune` finds it
+    if mask is None:
+        raise FileNotFoundError(f"{path}: no mask with the same stem under {masks}")
+    return mask
 
 
 def _load_kind(kind_dir: Path) -> tuple[list, list, np.ndarray, list]:

@@ -405,7 +405,7 @@ def test_a_mask_is_found_by_its_image_stem_or_that_stem_with_a_mask_suffix(tmp_p
     """`find_mask`: masks/dent/3.png or masks/dent/3_mask.png (the name many labelling tools and public datasets
     write, e.g. the open MVTec AD layout, `ground_truth/<class>/000_mask.png`) belongs to defective/dent/3.jpg; the
     plain stem wins where both exist; a mask of another folder or another stem does not match; nothing is found
-    without a masks folder."""
+    without a masks folder. A label image (defect pixels 1, 8 or 16 bit) is a mask like a white-on-black one."""
     from knowngood.training.holdout import find_mask
 
     defective, masks = tmp_path / "defective", tmp_path / "masks"
@@ -429,6 +429,14 @@ def test_a_mask_is_found_by_its_image_stem_or_that_stem_with_a_mask_suffix(tmp_p
     assert found[5].sum() == 20 and found[5].dtype == bool
     assert found[6] is None and found[7] is None
     assert find_mask(defective / "dent/3.jpg", defective, None) is None
+    label = np.zeros((16, 20), np.uint8)
+    label[3:5, :] = 1  # a label image: defect pixels 1, not 255
+    Image.fromarray(label).save(masks / "dent/8.png")
+    Image.fromarray(label.astype(np.uint16)).save(masks / "dent/9.png")  # 16 bit, 1 of 65535
+    Image.fromarray(np.zeros((16, 20), np.uint8)).save(masks / "dent/10.png")
+    assert find_mask(defective / "dent/8.png", defective, masks).sum() == 40
+    assert find_mask(defective / "dent/9.png", defective, masks).sum() == 40
+    assert find_mask(defective / "dent/10.png", defective, masks).sum() == 0
 
 
 def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_images(tiny_bundle, tmp_path):
