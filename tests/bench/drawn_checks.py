@@ -20,11 +20,17 @@ from tests.bench.peers import PatchMemoryPeer
 PEER_SIZE = 128  # the patch-memory peer's working size, as in the bench
 
 
+def chw(im: np.ndarray) -> np.ndarray:
+    """(H, W) gray or (H, W, 3) colour -> (C, H, W)."""
+    return im[None] if im.ndim == 2 else im.transpose(2, 0, 1)
+
+
 def test_set(good: Sequence[np.ndarray], bad: Sequence[np.ndarray], masks: Sequence[np.ndarray]):
-    """Good then defective (H, W) images -> (test images as (1, H, W), labels 0 / 1, masks: all False for the good)."""
+    """Good then defective (H, W) or (H, W, 3) images -> (test images as (C, H, W), labels 0 / 1, masks: all
+    False for the good)."""
     labels = np.r_[np.zeros(len(good)), np.ones(len(bad))]
-    gt = [np.zeros(im.shape, bool) for im in good] + list(masks)
-    return [im[None] for im in [*good, *bad]], labels, gt
+    gt = [np.zeros(im.shape[:2], bool) for im in good] + list(masks)
+    return [chw(im) for im in [*good, *bad]], labels, gt
 
 
 def measure_set(train, test, labels, gt, bundle: Path, minutes: float, kinds: tuple[str, ...]) -> dict:
@@ -33,8 +39,9 @@ def measure_set(train, test, labels, gt, bundle: Path, minutes: float, kinds: tu
     the choice took, training seconds, ms per test image."""
     run = knowngood_runner.train(train, bundle, minutes=minutes)
     scores, heats, ms = knowngood_runner.score_images(run.detector, test)
-    peer = PatchMemoryPeer().fit(to_model_input(train, size=PEER_SIZE, channels=1))
-    peer_scores, _ = peer.score(to_model_input(test, size=PEER_SIZE, channels=1))
+    channels = train[0].shape[0]
+    peer = PatchMemoryPeer().fit(to_model_input(train, size=PEER_SIZE, channels=channels))
+    peer_scores, _ = peer.score(to_model_input(test, size=PEER_SIZE, channels=channels))
     choice = run.detector.manifest["score"]["choice"]
     result = {
         "size": run.detector.cfg.size,

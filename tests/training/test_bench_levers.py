@@ -96,19 +96,23 @@ def test_the_tiled_speed_of_a_trained_bundle_is_timed_with_the_terms_it_was_chos
 
 def test_texture_check_draws_each_defect_kind_inside_its_mask():
     # the drawn defects of `tests/bench/texture_check.py` (the photographs themselves need scikit-image, which
-    # `make test` does not install): each kind changes the crop where its mask says, and little elsewhere
+    # `make test` does not install): each kind changes the crop where its mask says, and little elsewhere, on a
+    # gray crop and on a colour one (the colour photograph's), whose mask stays (H, W)
     rng = np.random.default_rng(0)
-    crop = rng.uniform(0.3, 0.7, (texture_check.CROP, texture_check.CROP)).astype(np.float32)
-    other = rng.uniform(0.0, 1.0, (256, 256)).astype(np.float32)
-    for kind in texture_check.KINDS:
-        out, mask = texture_check.draw_defect(crop, kind, rng, other)
-        assert out.shape == crop.shape and out.dtype == np.float32 and 0 <= out.min() and out.max() <= 1
-        assert 10 <= mask.sum() <= 0.1 * mask.size, kind  # a local defect: a few px to a tenth of the crop
-        change = np.abs(out - crop)
-        assert change[mask].mean() > 0.05, kind
-        near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 9, 1, 4)[0]
-        # more than 4 px from the mask only a stain's soft edge changes the crop (by a fraction of its centre's change)
-        assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "stain" else 1e-6), kind
+    side = (texture_check.CROP, texture_check.CROP)
+    for channels in ((), (3,)):
+        crop = rng.uniform(0.3, 0.7, (*side, *channels)).astype(np.float32)
+        other = rng.uniform(0.0, 1.0, (256, 256, *channels)).astype(np.float32)
+        for kind in texture_check.KINDS:
+            out, mask = texture_check.draw_defect(crop, kind, rng, other)
+            assert out.shape == crop.shape and out.dtype == np.float32 and 0 <= out.min() and out.max() <= 1
+            assert mask.shape == side and 10 <= mask.sum() <= 0.1 * mask.size, kind  # a few px to a tenth
+            change = np.abs(out - crop).reshape(*side, -1).max(-1)
+            assert change[mask].mean() > 0.05, kind
+            near = torch.nn.functional.max_pool2d(torch.from_numpy(mask[None].astype(np.float32)), 9, 1, 4)[0]
+            # beyond 4 px of the mask only a stain's soft edge changes the crop (a fraction of its centre's change)
+            assert change[near.numpy() == 0].max(initial=0) < (0.1 if kind == "stain" else 1e-6), kind
+    assert [c.shape for c in (drawn_checks.chw(crop), drawn_checks.chw(crop[..., 0]))] == [(3, *side), (1, *side)]
 
 
 def test_per_kind_auroc_takes_every_good_image_and_only_that_kinds_defective_ones():
