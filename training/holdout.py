@@ -69,8 +69,10 @@ def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.nda
         return None
     rel = path.relative_to(defective_dir).with_suffix("")
     folder = masks_dir / rel.parent
-    files = folder.iterdir() if folder.is_dir() else ()
-    by_stem = {c.stem: c for c in files if c.suffix.lower() in IMAGE_SUFFIXES and c.is_file()}
+    by_stem: dict[str, Path] = {}
+    for c in sorted(folder.iterdir()) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, on every machine
+        if c.suffix.lower() in IMAGE_SUFFIXES and c.is_file():
+            by_stem.setdefault(c.stem, c)
     for suffix in MASK_SUFFIXES:
         if rel.name + suffix in by_stem:
             return mask_pixels(read_image(by_stem[rel.name + suffix]))
