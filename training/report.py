@@ -122,7 +122,7 @@ def holdout_warnings(m: dict) -> list[str]:
     if masks is not None and masks["with_mask"] < masks["defective"] / 2:
         out.append(
             f"pixel AUROC and PRO {mask_coverage(m, scale=False)}, fewer than half: masks match a defective image "
-            "by its relative path and stem"
+            "by its relative path and stem (or the stem with _mask, -mask or _gt)"
         )
     return out
 
