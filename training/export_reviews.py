@@ -65,9 +65,10 @@ class Reviewed:
 
 def class_folder(defect_class: str | None) -> str:
     """A defect class as one folder name that stays inside `defective/`: characters other than letters, digits,
-    `.`, `-`, `_` and spaces become `_`; no leading dots. Classes that differ only in those characters share it."""
+    `.`, `-`, `_` and spaces become `_`; no leading dots. Classes that differ only in those characters share it. A
+    class named good becomes good_ (`tune` refuses a defect class named good: good parts among the defective)."""
     name = re.sub(r"[^\w.\- ]", "_", (defect_class or "").strip()).strip(". ")[:100]
-    return name or UNCLASSIFIED
+    return f"{name}_" if name.lower() == "good" else name or UNCLASSIFIED
 
 
 def parse_item(item: dict, part_type: str) -> Reviewed:

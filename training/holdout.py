@@ -100,6 +100,12 @@ def load_holdout(
     good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
     # a holdout laid out as test/good + test/<defect class>/ may be given as --good test/good --defective test
     bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, exclude=good_dir, **limits)
+    named_good = [p for p in bad.paths if defect_class(p, defective_dir).lower() == "good"]
+    if named_good:  # good parts among the defective ones: every figure of the holdout would be wrong
+        raise BadDataset(
+            f"--defective {defective_dir}: {len(named_good)} images in a defect class named good "
+            f"({named_good[0].parent}); pass that folder as --good (then it is left out of the defective images)"
+        )
     for option, folder, found in (("--good", good_dir, good), ("--defective", defective_dir, bad)):
         if not found.images:  # before any scoring: the threshold and the report need both kinds
             skipped = f" ({len(found.skipped)} unreadable, skipped)" if found.skipped else ""

@@ -322,3 +322,4 @@ def test_class_folders_stay_inside_defective():
     assert class_folder(None) == class_folder("") == class_folder("..") == "unclassified"
     assert class_folder("../../etc") == "_.._etc" and class_folder("Kratzer tief") == "Kratzer tief"
     assert "/" not in class_folder("a/b") and "\\" not in class_folder("a\\b")
+    assert class_folder("good") == "good_" and class_folder(" Good ") == "Good_"  # tune refuses a class named good

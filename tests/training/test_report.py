@@ -442,6 +442,7 @@ def test_a_mask_is_found_by_its_image_stem_or_that_stem_with_a_mask_suffix(tmp_p
 def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_images(tiny_bundle, tmp_path):
     """A holdout laid out as test/good/ beside test/<defect class>/ (with masks named <stem>_mask.png), given as
     --good test/good --defective test: the good images are good only, never a defect class "good"."""
+    from knowngood.training.errors import BadDataset
     from knowngood.training.holdout import load_holdout
 
     det = bundle.load(tiny_bundle)[0]
@@ -460,3 +461,8 @@ def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_ima
     assert list(h.labels) == [0, 0, 0, 1, 1, 1, 1]
     assert h.classes[3:] == ["dent", "dent", "scratch", "scratch"]
     assert [None if m is None else int(m.sum()) for m in h.masks] == [None, None, None, 25, 25, 25, 25]
+    # with --good elsewhere, test/good would be a defect class named "good": refused, saying what to pass
+    (tmp_path / "other").mkdir()
+    Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(tmp_path / "other" / "0.png")
+    with pytest.raises(BadDataset, match=r"3 images in a defect class named good .*pass that folder as --good"):
+        load_holdout(det, tmp_path / "other", test)
