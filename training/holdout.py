@@ -97,6 +97,8 @@ def load_holdout(
     images over `MAP_PIXELS` reduced to about that many pixels (`held_shape`), so the pixel metrics of
     multi-megapixel images are measured at about 1 MP."""
     limits = {"min_side": min_side_for(det.cfg.size)}
+    if Path(defective_dir).resolve().is_relative_to(Path(good_dir).resolve()):
+        raise BadDataset(f"--defective {defective_dir} is inside --good {good_dir}: its images would count as good")
     good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
     # a holdout laid out as test/good + test/<defect class>/ may be given as --good test/good --defective test
     bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, exclude=good_dir, **limits)

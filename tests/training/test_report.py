@@ -466,3 +466,6 @@ def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_ima
     Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(tmp_path / "other" / "0.png")
     with pytest.raises(BadDataset, match=r"3 images in a defect class named good .*pass that folder as --good"):
         load_holdout(det, tmp_path / "other", test)
+    for good, defective in ((test, test / "dent"), (test, test)):  # the other way round: refused before any reading
+        with pytest.raises(BadDataset, match="is inside --good"):
+            load_holdout(det, good, defective)
