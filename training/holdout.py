@@ -9,7 +9,7 @@ import numpy as np
 from knowngood.training.data import IMAGE_SUFFIXES, min_side_for, read_image, resized
 from knowngood.training.detector import Detector
 from knowngood.training.errors import BadDataset, BadImage
-from knowngood.training.folders import ImageFiles, load_folder
+from knowngood.training.folders import ImageFiles, load_folder, subset
 from knowngood.training.report import HoldoutResult
 
 MAP_PIXELS = 2**20  # the most pixels of a heatmap (and its mask) the holdout holds per image
@@ -47,7 +47,7 @@ def score_holdout(det: Detector, images) -> tuple[np.ndarray, list[np.ndarray]]:
     scores, maps = [], []
     for start in range(0, len(images), SCORE_CHUNK):
         idx = range(start, min(len(images), start + SCORE_CHUNK))
-        for r in det.inspect(images.take(idx) if isinstance(images, ImageFiles) else [images[i] for i in idx]):
+        for r in det.inspect(subset(images, idx)):
             scores.append(r.score)
             maps.append(held_map(r.heatmap))
     return np.array(scores), maps
@@ -59,6 +59,9 @@ def defect_class(path: Path, defective_dir: Path) -> str:
 
 
 MASK_SUFFIXES = ("", "_mask", "-mask", "_gt")  # a mask's stem: the image's, or the image's with one of these
+MASK_NAMING = (
+    f"the same relative path and stem, or that stem followed by {', '.join(MASK_SUFFIXES[1:-1])} or {MASK_SUFFIXES[-1]}"
+)
 
 
 def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.ndarray | None:
@@ -121,10 +124,7 @@ def load_holdout(
             raise BadImage(f"{path}: mask is {m.shape[1]} x {m.shape[0]}, image is {w} x {h}")
         masks.append(held_mask(m))
     if masks_dir is not None and all(m is None for m in masks):
-        raise BadDataset(
-            f"{masks_dir}: no mask matches any defective image (same relative path and stem, or the stem followed "
-            "by _mask, -mask or _gt)"
-        )
+        raise BadDataset(f"{masks_dir}: no mask matches any defective image ({MASK_NAMING})")
     images = ImageFiles(good.paths + bad.paths, limits)
     scores, heatmaps = score_holdout(det, images)
     return HoldoutResult(

@@ -111,6 +111,8 @@ def mask_coverage(m: dict, *, scale: bool = True) -> str:
 def holdout_warnings(m: dict) -> list[str]:
     """What makes the summary `m` doubtful, one sentence each: an image AUROC below chance (higher scores should
     mean defective), pixel metrics that rest on fewer than half of the defective images."""
+    from knowngood.training.holdout import MASK_NAMING  # here: holdout imports this module
+
     out = []
     auroc = m["image_auroc"]
     if auroc is not None and auroc < 0.5:
@@ -122,7 +124,7 @@ def holdout_warnings(m: dict) -> list[str]:
     if masks is not None and masks["with_mask"] < masks["defective"] / 2:
         out.append(
             f"pixel AUROC and PRO {mask_coverage(m, scale=False)}, fewer than half: masks match a defective image "
-            "by its relative path and stem (or the stem with _mask, -mask or _gt)"
+            f"by {MASK_NAMING}"
         )
     return out
 
