@@ -91,7 +91,8 @@ def _add_tune(sub) -> None:
         default=None,
         metavar="DIR",
         help="defect masks (white = defect) for the pixel metrics: defective/dent/3.png's mask is DIR/dent/3.png, or "
-        "3_mask.png, 3-mask.png or 3_gt.png (any image suffix)",
+        "3_mask.png, 3-mask.png or 3_gt.png (any image suffix); DIR may be the defective folder itself (masks beside "
+        "their images, named with a suffix) or a folder inside it",
     )
     target = p.add_mutually_exclusive_group()
     target.add_argument("--target-false-reject", type=float, default=None, metavar="A")

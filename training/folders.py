@@ -7,7 +7,7 @@ in their files (`ImageFiles`) and are decoded one at a time when a tile or a sco
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -96,17 +96,16 @@ def load_folder(
     min_count: int = 1,
     shape: tuple[int, int] | None = None,
     in_files: bool = False,
-    exclude: Path | None = None,
+    leave_out: Callable[[Path], bool] | None = None,
     **limits,
 ) -> ImageSet:
-    """Reads every image under `folder`, except those under `exclude` (`limits`: as `decode_image`'s). An
+    """Reads every image under `folder`, except those `leave_out` names (`limits`: as `decode_image`'s). An
     unreadable file is an error naming it, or skipped and reported. With `shape` (H, W), each image is reduced to it
     (`resized`) as soon as it is decoded; with `in_files`, each is decoded to check it and then left in its file
     (`ImageFiles`). Either way only one image at a time is held at full resolution."""
     paths, images, shapes, colours, skipped = [], [], [], [], []
-    left_out = Path(exclude).resolve() if exclude is not None else None
     for path in list_images(folder):
-        if left_out is not None and path.resolve().is_relative_to(left_out):
+        if leave_out is not None and leave_out(path):
             continue
         try:
             arr = read_image(path, **limits)

@@ -73,13 +73,52 @@ def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.nda
     rel = path.relative_to(defective_dir).with_suffix("")
     folder = masks_dir / rel.parent
     by_stem: dict[str, Path] = {}
-    for c in sorted(folder.iterdir()) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, on every machine
-        if c.suffix.lower() in IMAGE_SUFFIXES and c.is_file():
+    for c in sorted(_images_in(folder)) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, on every machine
+        if c.resolve() != path.resolve():  # masks beside their images: an image is not its own mask
             by_stem.setdefault(c.stem, c)
     for suffix in MASK_SUFFIXES:
         if rel.name + suffix in by_stem:
             return mask_pixels(read_image(by_stem[rel.name + suffix]))
     return None
+
+
+def _left_out(good_dir: Path, defective_dir: Path, masks_dir: Path | None):
+    """Which files under --good and --defective are not holdout images, as two predicates. A holdout laid out as
+    test/good + test/<defect class>/ may be given as --good test/good --defective test: test/good is left out of the
+    defective images. A masks folder inside --good or --defective is left out of it; masks beside their images
+    (--masks the defective folder itself: crack/007.png and crack/007_mask.png) are left out of the defective
+    images by name (`is_mask_beside`)."""
+    good, defective = Path(good_dir).resolve(), Path(defective_dir).resolve()
+    masks = None if masks_dir is None else Path(masks_dir).resolve()
+    stems: dict[Path, set[str]] = {}  # each folder's image stems, listed once
+
+    def within(folder: Path | None, outer: Path) -> bool:  # a folder strictly inside another
+        return folder is not None and folder != outer and folder.is_relative_to(outer)
+
+    def good_out(path: Path) -> bool:
+        return within(masks, good) and path.resolve().is_relative_to(masks)
+
+    def bad_out(path: Path) -> bool:
+        p = path.resolve()
+        if p.is_relative_to(good):
+            return True
+        if masks == defective:
+            if p.parent not in stems:
+                stems[p.parent] = {c.stem for c in _images_in(p.parent)}
+            return is_mask_beside(p.stem, stems[p.parent])
+        return within(masks, defective) and p.is_relative_to(masks)
+
+    return good_out, bad_out
+
+
+def is_mask_beside(stem: str, stems: set[str]) -> bool:
+    """Whether a file of `stem` is named as the mask of an image beside it, of one of `stems` (its folder's): that
+    stem followed by one of `MASK_SUFFIXES` (crack/007_mask.png beside crack/007.png)."""
+    return any(stem.endswith(sfx) and stem[: -len(sfx)] in stems for sfx in MASK_SUFFIXES[1:])
+
+
+def _images_in(folder: Path) -> list[Path]:
+    return [c for c in folder.iterdir() if c.suffix.lower() in IMAGE_SUFFIXES and c.is_file()]
 
 
 def mask_pixels(mask: np.ndarray) -> np.ndarray:
@@ -102,9 +141,9 @@ def load_holdout(
     limits = {"min_side": min_side_for(det.cfg.size)}
     if Path(defective_dir).resolve().is_relative_to(Path(good_dir).resolve()):
         raise BadDataset(f"--defective {defective_dir} is inside --good {good_dir}: its images would count as good")
-    good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, **limits)
-    # a holdout laid out as test/good + test/<defect class>/ may be given as --good test/good --defective test
-    bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, exclude=good_dir, **limits)
+    good_out, bad_out = _left_out(good_dir, defective_dir, masks_dir)
+    good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, leave_out=good_out, **limits)
+    bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, leave_out=bad_out, **limits)
     named_good = [p for p in bad.paths if defect_class(p, defective_dir).lower() == "good"]
     if named_good:  # good parts among the defective ones: every figure of the holdout would be wrong
         raise BadDataset(

@@ -469,3 +469,35 @@ def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_ima
     for good, defective in ((test, test / "dent"), (test, test)):  # the other way round: refused before any reading
         with pytest.raises(BadDataset, match="is inside --good"):
             load_holdout(det, good, defective)
+
+
+def test_masks_beside_or_inside_the_defective_folder_are_not_defective_images(tiny_bundle, tmp_path):
+    """Masks kept beside their images (dent/0.png and dent/0_mask.png, --masks the defective folder itself) or in
+    a folder inside the defective one (defective/masks/dent/0.png) are masks only: before, each was read as one
+    more defective image too (a class "masks", or a second image of dent), and an image could be its own mask."""
+    from knowngood.training.holdout import load_holdout
+
+    det = bundle.load(tiny_bundle)[0]
+    rng = np.random.default_rng(6)
+    good = tmp_path / "good"
+    good.mkdir()
+    for i in range(3):
+        Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(good / f"{i}.png")
+    mask = np.zeros((32, 32), np.uint8)
+    mask[4:9, 4:9] = 255
+    for layout in ("beside", "inside"):
+        defective = tmp_path / layout
+        masks = defective if layout == "beside" else defective / "masks"
+        for cls, n in (("dent", 2), ("scratch", 1)):
+            (defective / cls).mkdir(parents=True)
+            (masks / cls).mkdir(parents=True, exist_ok=True)
+            for i in range(n):
+                Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(defective / cls / f"{i}.png")
+                name = f"{i}_mask.png" if layout == "beside" else f"{i}.png"
+                Image.fromarray(mask).save(masks / cls / name)
+        h = load_holdout(det, good, defective, masks)
+        assert list(h.labels) == [0, 0, 0, 1, 1, 1], layout
+        assert h.classes[3:] == ["dent", "dent", "scratch"], layout
+        assert [int(m.sum()) for m in h.masks[3:]] == [25, 25, 25], layout
+    # the same files without --masks: a file named like a mask is then an image like any other
+    assert len(load_holdout(det, good, tmp_path / "beside").labels) == 9
