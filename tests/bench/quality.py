@@ -3,9 +3,11 @@ ablation: the same trained nets scored with other terms (`ablation.py`) and, on 
 at more than 128 px (`train`'s default for large images), the same recipe trained on the whole image at 128 px
 ("knowngood-128px", what tiling or the working size buys).
 
-The peers see every image resized to 128 px. knowngood scores a whole-image model on the same kind of batch (its
-working shape) and a tiled model through `Detector.score_images` on the native images; either way its heatmaps
-reach the metrics at each test image's own resolution, and every method's maps are resized to the masks' shape.
+The peers see every image resized to 128 px; where knowngood works at a larger size, the patch-memory peer is
+also run at that size (`SAME_SIZE_PEER`) and counts among the peers knowngood is measured against. knowngood scores
+a whole-image model on the same kind of batch (its working shape) and a tiled model through
+`Detector.score_images` on the native images; either way its heatmaps reach the metrics at each test image's own
+resolution, and every method's maps are resized to the masks' shape.
 Metrics come from `training.metrics` (image AUROC and average precision through scikit-learn; pixel AUROC and
 PRO up to 30 % false-positive rate, Bergmann et al. 2020), so the benchmark and `knowngood tune` agree.
 """
@@ -19,17 +21,23 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training import metrics
+from knowngood.training.config import ModelConfig
 from knowngood.training.data import shapes_of, to_model_input
 from knowngood.training.scoring import TERMS, resize_maps, term_weights
+from knowngood.training.selection import fine_memory_entries
 from knowngood.training.train import auto_size
 
 from tests.bench import ablation, knowngood_runner
 from tests.bench.datasets import Dataset
-from tests.bench.peers import AutoEncoderPeer, simple_peers
+from tests.bench.peers import AutoEncoderPeer, PatchMemoryPeer, simple_peers
 
 SIZE = knowngood_runner.SIZE
 METHODS = ("knowngood", "patch-memory", "nearest-neighbour", "pca", "autoencoder", "mean-grey")
-PEERS = METHODS[1:]
+# where knowngood works above 128 px (`train`'s default for large images), the patch-memory peer also at that size,
+# with as many entries per image position as at 128 px (`selection.fine_memory_entries`): the peer nearest to
+# knowngood's own memory term, compared at the same scale of the image
+SAME_SIZE_PEER = "patch-memory-same-size"
+PEERS = (*METHODS[1:], SAME_SIZE_PEER)
 # the ablation section: the same trained nets with other terms (ablation.py), and on a tiled dataset or one seen
 # at more than 128 px the same recipe trained on the whole image at 128 px
 TILING_ROW = "knowngood-128px"
@@ -121,6 +129,11 @@ def evaluate(
         ablated[TILING_ROW] = _knowngood_row(ds, run128, *_score_knowngood(ds, run128))
         _log_row(log, ds.name, TILING_ROW, ablated[TILING_ROW])
 
+    shape = run.detector.cfg.shape
+    if not ds.tile and max(shape) != SIZE:
+        rows[SAME_SIZE_PEER] = same_size_peer_row(ds, shape, models)
+        _log_row(log, ds.name, SAME_SIZE_PEER, rows[SAME_SIZE_PEER])
+
     # the auto-encoder gets the CPU time knowngood's fitting loop actually used on this dataset
     for peer in [*simple_peers(), AutoEncoderPeer(seconds=run.fit_seconds)]:
         if peer.name not in models:
@@ -134,7 +147,24 @@ def evaluate(
         extra = {"steps": peer.steps_done} if hasattr(peer, "steps_done") else {}
         rows[peer.name] = _row(ds, scores, maps, train_seconds=train_seconds, inspect_ms_per_image=ms, **extra)
         _log_row(log, ds.name, peer.name, rows[peer.name])
-    return {m: rows[m] for m in METHODS}, ablated, run.bundle
+    return {m: rows[m] for m in (*METHODS, SAME_SIZE_PEER) if m in rows}, ablated, run.bundle
+
+
+def same_size_peer_row(ds: Dataset, shape: tuple[int, int], models: dict) -> dict:
+    """The patch-memory peer's row with every image at knowngood's working `shape` (H, W) instead of 128 px, its
+    memory as large as knowngood's 4 px memory there (`fine_memory_entries`); fitted once per training set
+    (`models`)."""
+    if SAME_SIZE_PEER not in models:
+        start = time.monotonic()
+        peer = PatchMemoryPeer(fine_memory_entries(ModelConfig.memory_size, shape))
+        peer.fit(to_model_input(ds.train, size=shape, channels=ds.channels))
+        models[SAME_SIZE_PEER] = (peer, time.monotonic() - start)
+    peer, train_seconds = models[SAME_SIZE_PEER]
+    start = time.perf_counter()
+    x_test = to_model_input(ds.test, size=shape, channels=ds.channels)
+    scores, maps = peer.score(x_test)
+    ms = (time.perf_counter() - start) * 1000 / len(x_test)
+    return _row(ds, scores, maps, train_seconds=train_seconds, inspect_ms_per_image=ms)
 
 
 def _ablation_rows(ds: Dataset, run, models: dict, reference, log) -> dict:

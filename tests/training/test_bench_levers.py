@@ -163,3 +163,34 @@ def test_the_ablation_reproduces_a_trained_bundle_with_its_own_weights(tmp_path)
         out, check = ablation.score_variants(det, graph, test, keep_maps=True, reference=(scores, maps))
         assert check["max_abs_score_diff"] < 1e-4 and check["max_abs_heatmap_diff"] < 1e-3, (name, check)
         assert set(out) >= {"knowngood-all-terms", "knowngood-gan-terms", "knowngood-only-memory"}
+
+
+def test_the_same_size_peer_sees_knowngoods_working_size_and_counts_among_the_peers():
+    """Where knowngood works above 128 px, the patch-memory peer is also fitted at that size (every patch of three
+    256 px images fits its 16384 entries: 3 x 64 x 64 = 12288, where 128 px would give 3072) and finds a plain
+    defect; `best_peers` measures knowngood's margin against it when it is the best peer."""
+    from tests.bench import quality
+    from tests.bench.datasets import Dataset
+
+    rng = np.random.default_rng(2)
+
+    def scene(defect: bool) -> np.ndarray:
+        x = 0.5 + 0.05 * rng.standard_normal((1, 256, 256))
+        if defect:
+            x[:, 100:112, 60:72] = 1.0
+        return np.clip(x, 0, 1).astype(np.float32)
+
+    test = [scene(d) for d in (False, False, True, True)]
+    masks = [np.zeros((256, 256), bool) for _ in range(2)] + [np.zeros((256, 256), bool) for _ in range(2)]
+    for m in masks[2:]:
+        m[100:112, 60:72] = True
+    ds = Dataset("toy", [scene(False) for _ in range(3)], test, np.array([0, 0, 1, 1]), masks, "drawn here")
+    models: dict = {}
+    row = quality.same_size_peer_row(ds, (256, 256), models)
+    assert row["image_auroc"] == 1.0 and row["pixel_auroc"] > 0.9
+    assert models[quality.SAME_SIZE_PEER][0].memory.shape[0] == 3 * 64 * 64
+    rows = {m: {"image_auroc": 0.5} for m in quality.METHODS}
+    rows["knowngood"] = {"image_auroc": 0.9}
+    rows[quality.SAME_SIZE_PEER] = {"image_auroc": 0.8}
+    best = quality.best_peers({"toy": rows})["toy"]
+    assert best["best_peer"] == quality.SAME_SIZE_PEER and best["margin"] == 0.1
