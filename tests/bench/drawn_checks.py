@@ -15,7 +15,7 @@ from knowngood.training.metrics import pixel_auroc
 from sklearn.metrics import roc_auc_score
 
 from tests.bench import knowngood_runner
-from tests.bench.peers import PatchMemoryPeer
+from tests.bench.peers import PatchMemoryPeer, patch_memory_at
 
 PEER_SIZE = 128  # the patch-memory peer's working size, as in the bench
 
@@ -35,19 +35,26 @@ def test_set(good: Sequence[np.ndarray], bad: Sequence[np.ndarray], masks: Seque
 
 def measure_set(train, test, labels, gt, bundle: Path, minutes: float, kinds: tuple[str, ...]) -> dict:
     """knowngood trained as `train` does (`knowngood_runner.train`, its default working size) and the patch-memory
-    peer at `PEER_SIZE` on the same images: image AUROC overall and per defect kind, knowngood's pixel AUROC, what
-    the choice took, training seconds, ms per test image."""
+    peer at `PEER_SIZE` on the same images, and at knowngood's working size where that is another: image AUROC
+    overall and per defect kind, knowngood's pixel AUROC, what the choice took, training seconds, ms per test
+    image."""
     run = knowngood_runner.train(train, bundle, minutes=minutes)
     scores, heats, ms = knowngood_runner.score_images(run.detector, test)
     channels = train[0].shape[0]
     peer = PatchMemoryPeer().fit(to_model_input(train, size=PEER_SIZE, channels=channels))
     peer_scores, _ = peer.score(to_model_input(test, size=PEER_SIZE, channels=channels))
+    shape, same_auroc = run.detector.cfg.shape, None
+    if max(shape) != PEER_SIZE:  # knowngood works at a larger size: the peer there too
+        same = patch_memory_at(shape, train, channels)
+        same_scores, _ = same.score(to_model_input(test, size=shape, channels=channels))
+        same_auroc = round(float(roc_auc_score(labels, same_scores)), 4)
     choice = run.detector.manifest["score"]["choice"]
     result = {
         "size": run.detector.cfg.size,
         "knowngood": round(float(roc_auc_score(labels, scores)), 4),
         "knowngood_pixel": round(float(pixel_auroc(gt, heats)), 4),
         "patch_memory": round(float(roc_auc_score(labels, peer_scores)), 4),
+        "patch_memory_same_size": same_auroc,
         "chosen": {k: w for k, w in choice["chosen"].items() if w > 0},
         "combine": choice["combine"],
         "train_seconds": round(run.train_seconds),  # train_bundle's wall time, as the bench reports it

@@ -20,9 +20,11 @@ import torch
 import torch.nn.functional as F
 from knowngood.training.augment import random_patches
 from knowngood.training.config import ModelConfig
+from knowngood.training.data import to_model_input
 from knowngood.training.memory import as_patches, build_memory, local_average, nearest_distance
 from knowngood.training.perceptual import load_pretrained
 from knowngood.training.scoring import gaussian_kernel
+from knowngood.training.selection import fine_memory_entries
 from sklearn.decomposition import PCA
 from sklearn.neighbors import NearestNeighbors
 from torch import nn
@@ -248,3 +250,12 @@ class AutoEncoderPeer:
 def simple_peers() -> list:
     """The peers that need no time budget, in table order."""
     return [PatchMemoryPeer(), NearestNeighbourPeer(), PCAPeer(), MeanGreyPeer()]
+
+
+def patch_memory_at(shape: tuple[int, int], train: list[np.ndarray], channels: int) -> PatchMemoryPeer:
+    """The patch-memory peer fitted on `train` at a working `shape` (H, W) other than 128 px (knowngood's own, where
+    `train` chose a larger one), its memory as large as knowngood's 4 px memory there (`fine_memory_entries`): as
+    many entries per image position as at 128 px."""
+    peer = PatchMemoryPeer(fine_memory_entries(ModelConfig.memory_size, shape))
+    return peer.fit(to_model_input(train, size=shape, channels=channels))
+

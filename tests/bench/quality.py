@@ -21,15 +21,13 @@ from pathlib import Path
 import numpy as np
 import torch
 from knowngood.training import metrics
-from knowngood.training.config import ModelConfig
 from knowngood.training.data import shapes_of, to_model_input
 from knowngood.training.scoring import TERMS, resize_maps, term_weights
-from knowngood.training.selection import fine_memory_entries
 from knowngood.training.train import auto_size
 
 from tests.bench import ablation, knowngood_runner
 from tests.bench.datasets import Dataset
-from tests.bench.peers import AutoEncoderPeer, PatchMemoryPeer, simple_peers
+from tests.bench.peers import AutoEncoderPeer, patch_memory_at, simple_peers
 
 SIZE = knowngood_runner.SIZE
 METHODS = ("knowngood", "patch-memory", "nearest-neighbour", "pca", "autoencoder", "mean-grey")
@@ -151,14 +149,11 @@ def evaluate(
 
 
 def same_size_peer_row(ds: Dataset, shape: tuple[int, int], models: dict) -> dict:
-    """The patch-memory peer's row with every image at knowngood's working `shape` (H, W) instead of 128 px, its
-    memory as large as knowngood's 4 px memory there (`fine_memory_entries`); fitted once per training set
-    (`models`)."""
+    """The patch-memory peer's row with every image at knowngood's working `shape` (H, W) instead of 128 px
+    (`patch_memory_at`); fitted once per training set (`models`)."""
     if SAME_SIZE_PEER not in models:
         start = time.monotonic()
-        peer = PatchMemoryPeer(fine_memory_entries(ModelConfig.memory_size, shape))
-        peer.fit(to_model_input(ds.train, size=shape, channels=ds.channels))
-        models[SAME_SIZE_PEER] = (peer, time.monotonic() - start)
+        models[SAME_SIZE_PEER] = (patch_memory_at(shape, ds.train, ds.channels), time.monotonic() - start)
     peer, train_seconds = models[SAME_SIZE_PEER]
     start = time.perf_counter()
     x_test = to_model_input(ds.test, size=shape, channels=ds.channels)
