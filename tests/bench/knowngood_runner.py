@@ -67,7 +67,9 @@ def train(
 
 def score(det: Detector, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray, float]:
     """x (N, C, h, w) at the working shape -> scores (N,) (higher = less like known-good), heatmaps (N, h, w),
-    ms per image. Whole-image models only."""
+    ms per image, after one warm-up image (the first call's one-off costs are not per image). Whole-image models
+    only."""
+    det.score_batch(x[:1])
     start = time.perf_counter()
     scores, heats = det.score_batch(x)
     ms = (time.perf_counter() - start) * 1000 / len(x)
@@ -76,7 +78,9 @@ def score(det: Detector, x: torch.Tensor) -> tuple[np.ndarray, np.ndarray, float
 
 def score_images(det: Detector, images: list[np.ndarray]) -> tuple[np.ndarray, list[np.ndarray], float]:
     """Native-resolution images (C, H, W) -> scores (N,) (higher = less like known-good), heatmaps (H, W) at each
-    image's own resolution, ms per image: `Detector.score_images`, tiling included."""
+    image's own resolution, ms per image (after one warm-up image, as `score`): `Detector.score_images`, tiling
+    included."""
+    det.score_images(images[:1])
     start = time.perf_counter()
     scores, heats, _ = det.score_images(images)
     ms = (time.perf_counter() - start) * 1000 / len(images)
