@@ -11,7 +11,7 @@ import sys
 from importlib.metadata import entry_points
 from pathlib import Path
 
-from knowngood.training.config import AUTO_SIZE_MAX, SCALE_NOTE_RATIO, ModelConfig
+from knowngood.training.config import AUTO_SIZE_MAX, SCALE_NOTE_RATIO, ModelConfig, TrainConfig
 from knowngood.training.errors import KnowngoodError
 from knowngood.training.export_reviews import register as _add_export_reviews
 
@@ -29,6 +29,15 @@ def _add_train(sub) -> None:
         "for a tiled model or 1000 images at 256 px)",
     )
     p.add_argument("--steps", type=int, default=None, help="fix the work: same seed, data, steps = same bundle")
+    p.add_argument(
+        "--patience",
+        type=int,
+        default=TrainConfig.patience,
+        metavar="STEPS",
+        help="stop fitting early once the held-out reconstruction error (which picks the kept checkpoint) has not "
+        f"fallen for this many steps, and for as many as its best took (default {TrainConfig.patience}; 0: use the "
+        "whole --minutes or --steps)",
+    )
     p.add_argument(
         "--size",
         type=int,

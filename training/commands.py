@@ -47,6 +47,8 @@ def train(args) -> int:
     _rate("--target-false-reject", args.target_false_reject)
     _positive("--minutes", args.minutes)
     _positive("--steps", args.steps)
+    if args.patience < 0:
+        raise BadConfig(f"--patience must be 0 (off) or a number of steps, got {args.patience}")
     _writable_output(args.output)
     start = _load_named("--from", args.start)
     if start is not None:  # the bundle's settings, which its weights fit, colour mode included
@@ -67,6 +69,7 @@ def train(args) -> int:
         model = dataclasses.replace(model, residual_shift=args.residual_shift)
         shifts = (args.residual_shift,)
     tcfg = TrainConfig(
+        patience=args.patience,
         residual_shifts=shifts,
         steps=steps,
         minutes=minutes or 0.0,
@@ -89,6 +92,11 @@ def train(args) -> int:
         f"wrote {args.output} (model {det.model_id}, {t['steps_done']} steps in {t['seconds']:.0f} s, "
         f"threshold {det.threshold:.3f} by {det.manifest['threshold']['method']})"
     )
+    if t.get("stopped_early"):
+        print(
+            f"stopped early: the held-out reconstruction error had not fallen since step {t['chosen_step']} "
+            f"(--patience {tcfg.patience}; 0 uses the whole budget)"
+        )
     if det.manifest["threshold"].get("method") == "conformal-max":
         print(f"note: {det.manifest['threshold']['note'].split(';')[0]}")
     choice = det.manifest["score"].get("choice", {})

@@ -104,6 +104,9 @@ class TrainConfig:
     holdout_share: float = 0.25  # known-good images kept out of fitting for standardisation and threshold
     target_false_reject: float = 0.01  # conformal threshold target at train time
     eval_every: int = 250  # steps between Fréchet-distance evaluations / checkpoint choice
+    # early stopping: fitting ends once the held-out reconstruction error has not fallen for this many steps, and
+    # for at least as many as the best checkpoint took (0: use the whole budget); see fit.stalled
+    patience: int = 1000
     critic_feature_steps: int = 1000  # steps of the feature-space critic (feature_critic.py), after the GAN
     checkpoint_every: int = 250  # steps between resumable checkpoints
     choose_terms: bool = True  # choose the terms' weights and the residual shift on synthetic defects (selection.py)
@@ -123,6 +126,8 @@ class TrainConfig:
             raise BadConfig(f"residual_shifts must be 0 to 3 px each, got {self.residual_shifts}")
         if self.steps < 1 or self.batch < 1:
             raise BadConfig("steps and batch must be at least 1")
+        if self.patience < 0:
+            raise BadConfig(f"patience must be 0 (off) or a number of steps, got {self.patience}")
 
 
 def from_dict(cls, values: dict):

@@ -301,6 +301,7 @@ def _manifest(good, model, train, result, choice, counts, terms) -> dict:
             "seconds": round(result.seconds, 1),
             "chosen_step": result.chosen_step,
             "chosen_by": "lowest held-out reconstruction error",
+            "stopped_early": result.stopped_early,
             "history": result.history,
             "images": {"fit": n_fit, "standardise": n_std, "calibrate": n_cal, "skipped": len(good.skipped)},
         },

@@ -43,6 +43,7 @@ def test_train_writes_a_self_describing_bundle(trained, scenario):
     det, frechet = bundle.load(trained)
     m = det.manifest
     assert m["training"]["steps_done"] == int(STEPS) and m["preprocessing"]["size"] == 64
+    assert m["training"]["stopped_early"] is False and m["training"]["config"]["patience"] == 1000
     assert m["threshold"]["method"].startswith("conformal") and np.isfinite(det.threshold)
     assert m["fingerprints"]["training"] and m["score"]["direction"].startswith("higher")
     assert m["folders"]["training"] == str(scenario / "train" / "good")  # what the report names
@@ -167,6 +168,7 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
         ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--minutes", "-1"],
         ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--minutes", "0"],
         ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--steps", "0"],
+        ["train", str(tmp_path), "-o", str(tmp_path / "m.kgm"), "--patience", "-5"],
         ["train", str(tmp_path), "-o", str(tmp_path / "missing_dir" / "m.kgm")],
         ["inspect", str(trained), str(broken), "--batch", "0"],
         ["inspect", str(trained), str(broken), "--heatmaps", str(broken)],
@@ -182,7 +184,8 @@ def test_bad_input_exits_2_with_one_clear_line(trained, tmp_path):
             [sys.executable, "-m", "knowngood.training.cli", *cases[0]], capture_output=True, text=True
         ).stderr
     )
-    for args, name in zip(cases[4:], ("--minutes", "--minutes", "--steps", "missing_dir", "--batch", "--heatmaps")):
+    names = ("--minutes", "--minutes", "--steps", "--patience", "missing_dir", "--batch", "--heatmaps")
+    for args, name in zip(cases[4:], names, strict=True):
         err = subprocess.run(
             [sys.executable, "-m", "knowngood.training.cli", *args], capture_output=True, text=True
         ).stderr

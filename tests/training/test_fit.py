@@ -5,7 +5,7 @@ import pytest
 import torch
 from knowngood.training.config import ModelConfig, TrainConfig
 from knowngood.training.errors import BadConfig
-from knowngood.training.fit import Fitter, fit, gradient_penalty, split_indices
+from knowngood.training.fit import Fitter, fit, gradient_penalty, split_indices, stalled
 from torch import nn
 
 
@@ -74,6 +74,29 @@ def test_resume_from_checkpoint_equals_uninterrupted_run(tmp_path, monkeypatch):
         assert torch.equal(pa, pb)
     with pytest.raises(BadConfig, match="different configuration"):
         fit(x, v, TINY, _tcfg(seed=9), checkpoint=ckpt, progress=False)
+
+
+@pytest.mark.parametrize(
+    "errors, patience, steps_done, chosen",
+    [
+        ([5, 4, 3, 3.5, 3.6, 3.7, 3.8, 3.9], 3, 6, 3),  # best at 3, no lower for 3 steps: stops at 6
+        ([9, 8, 7, 6, 5, 4, 3, 2] + [2.5] * 12, 3, 16, 8),  # best at 8: goes on as many steps again, to 16
+        ([5, 4, 3] + [3.5] * 17, 0, 20, 3),  # patience 0: the whole budget
+    ],
+)
+def test_fitting_stops_early_once_the_held_out_error_stops_falling(monkeypatch, errors, patience, steps_done, chosen):
+    """Early stopping (`stalled`): the held-out error evaluated every step is scripted; the run ends `patience`
+    steps after its best, and no sooner than as many steps again as the best took; the best checkpoint is kept."""
+    x, v = _data(), _data(8, seed=1)
+    script = iter(errors)
+    monkeypatch.setattr(Fitter, "evaluate", lambda self: {"val_rec": next(script), "fd": 0.0, "fd_floor": 0.0})
+    result = fit(x, v, TINY, _tcfg(steps=20, eval_every=1, checkpoint_every=1, patience=patience), progress=False)
+    assert (result.steps_done, result.chosen_step) == (steps_done, chosen)
+    assert result.stopped_early == (steps_done < 20)
+    assert stalled(1750, 750, 1000) and not stalled(1500, 750, 1000)
+    assert stalled(3000, 1500, 1000) and not stalled(2750, 1500, 1000)
+    with pytest.raises(BadConfig, match="patience"):
+        _tcfg(patience=-1)
 
 
 def test_two_stage_recipe_trains_encoder_last():
