@@ -258,4 +258,3 @@ def patch_memory_at(shape: tuple[int, int], train: list[np.ndarray], channels: i
     many entries per image position as at 128 px."""
     peer = PatchMemoryPeer(fine_memory_entries(ModelConfig.memory_size, shape))
     return peer.fit(to_model_input(train, size=shape, channels=channels))
-
