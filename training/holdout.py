@@ -74,7 +74,7 @@ def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.nda
     folder = masks_dir / rel.parent
     by_stem: dict[str, Path] = {}
     for c in sorted(_images_in(folder)) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, on every machine
-        if c.resolve() != path.resolve():  # masks beside their images: an image is not its own mask
+        if c.stem != rel.name or c.resolve() != path.resolve():  # masks beside their images: not its own mask
             by_stem.setdefault(c.stem, c)
     for suffix in MASK_SUFFIXES:
         if rel.name + suffix in by_stem:
