@@ -64,21 +64,27 @@ MASK_NAMING = (
 )
 
 
-def find_mask(path: Path, defective_dir: Path, masks_dir: Path | None) -> np.ndarray | None:
+def find_mask(
+    path: Path, defective_dir: Path, masks_dir: Path | None, listings: dict[Path, dict[str, list[Path]]] | None = None
+) -> np.ndarray | None:
     """The mask with the same relative path and stem (any image suffix), or that stem followed by one of
     `MASK_SUFFIXES` (`crack/007.png` -> `crack/007_mask.png`, as many labelling tools write them), as a bool (H, W)
-    array (`mask_pixels`), or None. The plain stem wins where both exist."""
+    array (`mask_pixels`), or None. The plain stem wins where both exist. `listings` keeps each masks folder's
+    files by stem across calls (a holdout's images share a few folders), else each call lists its folder."""
     if masks_dir is None:
         return None
     rel = path.relative_to(defective_dir).with_suffix("")
     folder = masks_dir / rel.parent
-    by_stem: dict[str, Path] = {}
-    for c in sorted(_images_in(folder)) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, on every machine
-        if c.stem != rel.name or c.resolve() != path.resolve():  # masks beside their images: not its own mask
-            by_stem.setdefault(c.stem, c)
+    listings = {} if listings is None else listings
+    if folder not in listings:
+        by_stem: dict[str, list[Path]] = {}
+        for c in sorted(_images_in(folder)) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, everywhere
+            by_stem.setdefault(c.stem, []).append(c)
+        listings[folder] = by_stem
     for suffix in MASK_SUFFIXES:
-        if rel.name + suffix in by_stem:
-            return mask_pixels(read_image(by_stem[rel.name + suffix]))
+        for c in listings[folder].get(rel.name + suffix, ()):
+            if suffix or c.resolve() != path.resolve():  # masks beside their images: an image is not its own mask
+                return mask_pixels(read_image(c))
     return None
 
 
@@ -156,9 +162,9 @@ def load_holdout(
             raise BadDataset(
                 f"{option} {folder}: no readable images{skipped}; the holdout needs good and defective images"
             )
-    masks = [None] * len(good.images)
+    masks, listings = [None] * len(good.images), {}
     for path, (h, w) in zip(bad.paths, bad.shapes):
-        m = find_mask(path, defective_dir, masks_dir)
+        m = find_mask(path, defective_dir, masks_dir, listings)
         if m is not None and m.shape != (h, w):
             raise BadImage(f"{path}: mask is {m.shape[1]} x {m.shape[0]}, image is {w} x {h}")
         masks.append(held_mask(m))

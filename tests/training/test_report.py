@@ -471,10 +471,11 @@ def test_a_good_folder_inside_the_defective_one_is_left_out_of_the_defective_ima
             load_holdout(det, good, defective)
 
 
-def test_masks_beside_or_inside_the_defective_folder_are_not_defective_images(tiny_bundle, tmp_path):
+def test_masks_beside_or_inside_the_defective_folder_are_not_defective_images(tiny_bundle, tmp_path, monkeypatch):
     """Masks kept beside their images (dent/0.png and dent/0_mask.png, --masks the defective folder itself) or in
     a folder inside the defective one (defective/masks/dent/0.png) are masks only: before, each was read as one
     more defective image too (a class "masks", or a second image of dent), and an image could be its own mask."""
+    from knowngood.training import holdout
     from knowngood.training.holdout import load_holdout
 
     det = bundle.load(tiny_bundle)[0]
@@ -485,6 +486,8 @@ def test_masks_beside_or_inside_the_defective_folder_are_not_defective_images(ti
         Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(good / f"{i}.png")
     mask = np.zeros((32, 32), np.uint8)
     mask[4:9, 4:9] = 255
+    listed, list_images = [], holdout._images_in  # which folders are listed
+    monkeypatch.setattr(holdout, "_images_in", lambda folder: listed.append(folder) or list_images(folder))
     for layout in ("beside", "inside"):
         defective = tmp_path / layout
         masks = defective if layout == "beside" else defective / "masks"
@@ -495,7 +498,12 @@ def test_masks_beside_or_inside_the_defective_folder_are_not_defective_images(ti
                 Image.fromarray(rng.integers(50, 200, (32, 32), dtype=np.uint8)).save(defective / cls / f"{i}.png")
                 name = f"{i}_mask.png" if layout == "beside" else f"{i}.png"
                 Image.fromarray(mask).save(masks / cls / name)
+        listed.clear()
         h = load_holdout(det, good, defective, masks)
+        # each masks folder listed once for all its images, not once per image (and each defective folder once
+        # more for the names of masks beside their images)
+        once = 2 if layout == "beside" else 1
+        assert [listed.count(masks / cls) for cls in ("dent", "scratch")] == [once, once], (layout, listed)
         assert list(h.labels) == [0, 0, 0, 1, 1, 1], layout
         assert h.classes[3:] == ["dent", "dent", "scratch"], layout
         assert [int(m.sum()) for m in h.masks[3:]] == [25, 25, 25], layout
