@@ -44,22 +44,23 @@ def train(
     *,
     minutes: float | None,
     steps: int | None = None,
-    channels: int = 1,
+    channels: int | None = None,
     seed: int = 0,
     tile: int = 0,
     size: int | None = None,
 ) -> KnowngoodRun:
     """Trains on known-good images (C, H, W) within `minutes` (or exactly `steps` steps when minutes is None);
     `tile` > 0: a tiled model, tiles of that many native px at the working size `SIZE`. A whole-image model works
-    at `size`, or (None) at `train`'s default for these images (`auto_size`: 128 px unless they are large)."""
+    at `size`, or (None) at `train`'s default for these images (`auto_size`: 128 px unless they are large). The
+    colour mode is `channels`, or (None) `train`'s for these images: colour if any image has colour."""
     if tile:
         size = SIZE
+    good = ArrayImageSet(paths=[], images=images)
+    channels = good.channels if channels is None else channels
     model = ModelConfig(size=auto_size(shapes_of(images)) if size is None else size, channels=channels, tile=tile)
     tcfg = TrainConfig(steps=steps or 10**9, minutes=minutes or 0.0, seed=seed)
     start = time.monotonic()
-    det = train_bundle(
-        ArrayImageSet(paths=[], images=images), out, model=model, train=tcfg, progress=False, resume=False
-    )
+    det = train_bundle(good, out, model=model, train=tcfg, progress=False, resume=False)
     seconds = time.monotonic() - start
     info = det.manifest["training"]
     return KnowngoodRun(det, out, seconds, float(info["seconds"]), int(info["steps_done"]))

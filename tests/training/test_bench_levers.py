@@ -5,6 +5,7 @@ combine the terms (`tests/bench/combination_levers.py`)."""
 from __future__ import annotations
 
 import numpy as np
+import pytest
 import torch
 from knowngood.training.bundle import new_graph
 from knowngood.training.config import ModelConfig
@@ -194,3 +195,24 @@ def test_the_same_size_peer_sees_knowngoods_working_size_and_counts_among_the_pe
     rows[quality.SAME_SIZE_PEER] = {"image_auroc": 0.8}
     best = quality.best_peers({"toy": rows})["toy"]
     assert best["best_peer"] == quality.SAME_SIZE_PEER and best["margin"] == 0.1
+
+
+def test_the_bench_trains_knowngood_in_the_colour_mode_train_would_choose(tmp_path, monkeypatch):
+    """`knowngood_runner.train` takes the colour mode `knowngood train` takes (`ImageSet.channels`: colour if any
+    image has colour) unless told: the texture check's colour photograph was trained in grayscale before, while its
+    patch-memory peer saw colour."""
+    from tests.bench import knowngood_runner
+
+    seen = []
+
+    def fake_train_bundle(good, out, *, model, **_):
+        seen.append(model.channels)
+        raise StopIteration  # nothing to train: only the model it would have trained matters
+
+    monkeypatch.setattr(knowngood_runner, "train_bundle", fake_train_bundle)
+    gray = [np.zeros((1, 32, 32), np.float32)] * 2
+    colour = gray[:1] + [np.zeros((3, 32, 32), np.float32)]
+    for images, channels in ((gray, None), (colour, None), (colour, 1)):
+        with pytest.raises(StopIteration):
+            knowngood_runner.train(images, tmp_path / "x.kgm", minutes=None, steps=1, channels=channels)
+    assert seen == [1, 3, 1]
