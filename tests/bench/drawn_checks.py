@@ -33,12 +33,14 @@ def test_set(good: Sequence[np.ndarray], bad: Sequence[np.ndarray], masks: Seque
     return [chw(im) for im in [*good, *bad]], labels, gt
 
 
-def measure_set(train, test, labels, gt, bundle: Path, minutes: float, kinds: tuple[str, ...]) -> dict:
-    """knowngood trained as `train` does (`knowngood_runner.train`, its default working size) and the patch-memory
-    peer at `PEER_SIZE` on the same images, and at knowngood's working size where that is another: image AUROC
-    overall and per defect kind, knowngood's pixel AUROC, what the choice took, training seconds, ms per test
-    image."""
-    run = knowngood_runner.train(train, bundle, minutes=minutes)
+def measure_set(
+    train, test, labels, gt, bundle: Path, minutes: float, kinds: tuple[str, ...], size: int | None = None
+) -> dict:
+    """knowngood trained as `train` does (`knowngood_runner.train`, its default working size, or `size` as `train
+    --size` gives it) and the patch-memory peer at `PEER_SIZE` on the same images, and at knowngood's working size
+    where that is another: image AUROC overall and per defect kind, knowngood's pixel AUROC, what the choice took,
+    training seconds, ms per test image."""
+    run = knowngood_runner.train(train, bundle, minutes=minutes, size=size)
     scores, heats, ms = knowngood_runner.score_images(run.detector, test)
     channels = train[0].shape[0]
     peer = PatchMemoryPeer().fit(to_model_input(train, size=PEER_SIZE, channels=channels))
@@ -82,17 +84,20 @@ def main(
     description: str,
     names: tuple[str, ...],
     what: str,
-    measure: Callable[[str, float, Path], dict],
+    measure: Callable[[str, float, Path, int | None], dict],
     default_out: Path,
     extra: Callable[[argparse.ArgumentParser], None] | None = None,
     before: Callable[[argparse.Namespace], int | None] | None = None,
 ) -> int:
-    """Parses NAME ... [--minutes M] [--out FILE] (plus `extra`'s options), then `measure(name, minutes, out dir)`
-    for each name (default: all), printing each result and writing them all to --out after each. `before` may
-    act on the options first and return an exit code to stop there."""
+    """Parses NAME ... [--minutes M] [--size PX] [--out FILE] (plus `extra`'s options), then `measure(name, minutes,
+    out dir, size)` for each name (default: all), printing each result and writing them all to --out after each.
+    `before` may act on the options first and return an exit code to stop there."""
     ap = argparse.ArgumentParser(description=description)
     ap.add_argument("names", nargs="*", help=f"any of {', '.join(names)} (default: all)")
     ap.add_argument("--minutes", type=float, default=2.5)
+    ap.add_argument(
+        "--size", type=int, default=None, help="knowngood's working size, as train --size (default: train's)"
+    )
     ap.add_argument("--out", type=Path, default=default_out)
     if extra:
         extra(ap)
@@ -106,7 +111,7 @@ def main(
     args.out.parent.mkdir(parents=True, exist_ok=True)
     result = {}
     for name in args.names or names:
-        result[name] = measure(name, args.minutes, args.out.parent)
+        result[name] = measure(name, args.minutes, args.out.parent, args.size)
         print(name, json.dumps(result[name]), flush=True)
         args.out.write_text(json.dumps(result, indent=2))
     return 0

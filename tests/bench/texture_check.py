@@ -12,8 +12,9 @@ Per photograph: 200 known-good training crops from its top 320 rows; 40 good and
 bottom 192 rows (the test crops never overlap a training crop), 10 of each defect kind: a scratch (a line of 20-50
 px, 1-2 px wide, dark or bright), a pore (a dark ellipse of 3-8 px radius), a stain (a Gaussian blob of 8-20 px,
 brightness x 0.55 or x 1.5), a foreign patch (14-30 px of another of the photographs) and a smear (a disc of 10-16
-px blurred). knowngood trains as `train` does (`knowngood_runner.train`, whole crops at 128 px); the patch-memory
-peer (`peers.PatchMemoryPeer`) on the same crops. Image AUROC (scikit-learn) overall and per defect kind, pixel
+px blurred). knowngood trains as `train` does (`knowngood_runner.train`, whole crops at 128 px, or at `--size`
+as `train --size` gives it); the patch-memory peer (`peers.PatchMemoryPeer`) on the same crops, and at
+knowngood's working size too where that is another. Image AUROC (scikit-learn) overall and per defect kind, pixel
 AUROC on the drawn masks. The defects are drawn, not real, but the surfaces are real: design evidence for the
 README's levers, not a target.
 """
@@ -111,9 +112,11 @@ def build(name: str, seed: int = 0):
     return [drawn_checks.chw(c) for c in train], *drawn_checks.test_set(good, bad, masks)
 
 
-def measure(name: str, minutes: float, out_dir: Path) -> dict:
+def measure(name: str, minutes: float, out_dir: Path, size: int | None = None) -> dict:
     train, test, labels, gt = build(name)
-    return drawn_checks.measure_set(train, test, labels, gt, out_dir / f"texture-{name}.kgm", minutes, KINDS)
+    return drawn_checks.measure_set(
+        train, test, labels, gt, out_dir / f"texture-{name}{f'-{size}' if size else ''}.kgm", minutes, KINDS, size
+    )
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -4,6 +4,8 @@ combine the terms (`tests/bench/combination_levers.py`)."""
 
 from __future__ import annotations
 
+import json
+
 import numpy as np
 import pytest
 import torch
@@ -216,3 +218,24 @@ def test_the_bench_trains_knowngood_in_the_colour_mode_train_would_choose(tmp_pa
         with pytest.raises(StopIteration):
             knowngood_runner.train(images, tmp_path / "x.kgm", minutes=None, steps=1, channels=channels)
     assert seen == [1, 3, 1]
+
+
+def test_the_drawn_checks_train_knowngood_at_the_size_asked(tmp_path):
+    """`python -m tests.bench.texture_check gravel --size 256` measures knowngood as `train --size 256` gives it;
+    without --size, at `train`'s own default (None)."""
+    got = []
+
+    def measure(name, minutes, out_dir, size):
+        got.append((name, minutes, size))
+        return {"size": size}
+
+    threads = torch.get_num_threads()
+    try:
+        for argv in (["b", "--size", "256"], ["a", "--minutes", "1"]):
+            out = tmp_path / "check.json"
+            common = dict(description="d", names=("a", "b"), what="set", measure=measure, default_out=out)
+            assert drawn_checks.main(argv + ["--out", str(out)], **common) == 0
+    finally:
+        torch.set_num_threads(threads)
+    assert got == [("b", 2.5, 256), ("a", 1.0, None)]
+    assert json.loads(out.read_text()) == {"a": {"size": None}}
