@@ -3,6 +3,7 @@ masks matched to defective images by relative path and stem, and scoring it all 
 
 from __future__ import annotations
 
+from collections.abc import Container
 from pathlib import Path
 
 import numpy as np
@@ -64,39 +65,48 @@ MASK_NAMING = (
 )
 
 
+Listings = dict[Path, dict[str, list[Path]]]  # (resolved) folder -> its image files by stem, each folder listed once
+
+
+def files_by_stem(folder: Path, listings: Listings | None = None) -> dict[str, list[Path]]:
+    """A folder's image files by stem, sorted (3.bmp before 3.png, on every machine); {} if it is no folder. Kept in
+    `listings` where given, so a holdout lists each folder once for all its images."""
+    key = folder.resolve()
+    if listings is not None and key in listings:
+        return listings[key]
+    by_stem: dict[str, list[Path]] = {}
+    for c in sorted(_images_in(folder)) if folder.is_dir() else ():
+        by_stem.setdefault(c.stem, []).append(c)
+    if listings is not None:
+        listings[key] = by_stem
+    return by_stem
+
+
 def find_mask(
-    path: Path, defective_dir: Path, masks_dir: Path | None, listings: dict[Path, dict[str, list[Path]]] | None = None
+    path: Path, defective_dir: Path, masks_dir: Path | None, listings: Listings | None = None
 ) -> np.ndarray | None:
     """The mask with the same relative path and stem (any image suffix), or that stem followed by one of
     `MASK_SUFFIXES` (`crack/007.png` -> `crack/007_mask.png`, as many labelling tools write them), as a bool (H, W)
-    array (`mask_pixels`), or None. The plain stem wins where both exist. `listings` keeps each masks folder's
-    files by stem across calls (a holdout's images share a few folders), else each call lists its folder."""
+    array (`mask_pixels`), or None. The plain stem wins where both exist. `listings`: see `files_by_stem`."""
     if masks_dir is None:
         return None
     rel = path.relative_to(defective_dir).with_suffix("")
-    folder = masks_dir / rel.parent
-    listings = {} if listings is None else listings
-    if folder not in listings:
-        by_stem: dict[str, list[Path]] = {}
-        for c in sorted(_images_in(folder)) if folder.is_dir() else ():  # sorted: 3.bmp before 3.png, everywhere
-            by_stem.setdefault(c.stem, []).append(c)
-        listings[folder] = by_stem
+    by_stem = files_by_stem(masks_dir / rel.parent, listings)
     for suffix in MASK_SUFFIXES:
-        for c in listings[folder].get(rel.name + suffix, ()):
+        for c in by_stem.get(rel.name + suffix, ()):
             if suffix or c.resolve() != path.resolve():  # masks beside their images: an image is not its own mask
                 return mask_pixels(read_image(c))
     return None
 
 
-def _left_out(good_dir: Path, defective_dir: Path, masks_dir: Path | None):
+def _left_out(good_dir: Path, defective_dir: Path, masks_dir: Path | None, listings: Listings):
     """Which files under --good and --defective are not holdout images, as two predicates. A holdout laid out as
     test/good + test/<defect class>/ may be given as --good test/good --defective test: test/good is left out of the
     defective images. A masks folder inside --good or --defective is left out of it; masks beside their images
     (--masks the defective folder itself: crack/007.png and crack/007_mask.png) are left out of the defective
-    images by name (`is_mask_beside`)."""
+    images by name (`is_mask_beside`; the folders listed into `listings`, which `find_mask` then reuses)."""
     good, defective = Path(good_dir).resolve(), Path(defective_dir).resolve()
     masks = None if masks_dir is None else Path(masks_dir).resolve()
-    stems: dict[Path, set[str]] = {}  # each folder's image stems, listed once
 
     def within(folder: Path | None, outer: Path) -> bool:  # a folder strictly inside another
         return folder is not None and folder != outer and folder.is_relative_to(outer)
@@ -109,15 +119,13 @@ def _left_out(good_dir: Path, defective_dir: Path, masks_dir: Path | None):
         if p.is_relative_to(good):
             return True
         if masks == defective:
-            if p.parent not in stems:
-                stems[p.parent] = {c.stem for c in _images_in(p.parent)}
-            return is_mask_beside(p.stem, stems[p.parent])
+            return is_mask_beside(p.stem, files_by_stem(p.parent, listings).keys())
         return within(masks, defective) and p.is_relative_to(masks)
 
     return good_out, bad_out
 
 
-def is_mask_beside(stem: str, stems: set[str]) -> bool:
+def is_mask_beside(stem: str, stems: Container[str]) -> bool:
     """Whether a file of `stem` is named as the mask of an image beside it, of one of `stems` (its folder's): that
     stem followed by one of `MASK_SUFFIXES` (crack/007_mask.png beside crack/007.png)."""
     return any(stem.endswith(sfx) and stem[: -len(sfx)] in stems for sfx in MASK_SUFFIXES[1:])
@@ -147,7 +155,8 @@ def load_holdout(
     limits = {"min_side": min_side_for(det.cfg.size)}
     if Path(defective_dir).resolve().is_relative_to(Path(good_dir).resolve()):
         raise BadDataset(f"--defective {defective_dir} is inside --good {good_dir}: its images would count as good")
-    good_out, bad_out = _left_out(good_dir, defective_dir, masks_dir)
+    listings: Listings = {}
+    good_out, bad_out = _left_out(good_dir, defective_dir, masks_dir, listings)
     good = load_folder(good_dir, skip_bad=skip_bad, min_count=0, in_files=True, leave_out=good_out, **limits)
     bad = load_folder(defective_dir, skip_bad=skip_bad, min_count=0, in_files=True, leave_out=bad_out, **limits)
     named_good = [p for p in bad.paths if defect_class(p, defective_dir).lower() == "good"]
@@ -162,7 +171,7 @@ def load_holdout(
             raise BadDataset(
                 f"{option} {folder}: no readable images{skipped}; the holdout needs good and defective images"
             )
-    masks, listings = [None] * len(good.images), {}
+    masks = [None] * len(good.images)
     for path, (h, w) in zip(bad.paths, bad.shapes):
         m = find_mask(path, defective_dir, masks_dir, listings)
         if m is not None and m.shape != (h, w):

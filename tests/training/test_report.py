@@ -500,10 +500,9 @@ def test_masks_beside_or_inside_the_defective_folder_are_not_defective_images(ti
                 Image.fromarray(mask).save(masks / cls / name)
         listed.clear()
         h = load_holdout(det, good, defective, masks)
-        # each masks folder listed once for all its images, not once per image (and each defective folder once
-        # more for the names of masks beside their images)
-        once = 2 if layout == "beside" else 1
-        assert [listed.count(masks / cls) for cls in ("dent", "scratch")] == [once, once], (layout, listed)
+        # each masks folder listed once for all its images, not once per image (masks beside their images: the
+        # same listing tells which files are masks and finds them)
+        assert [listed.count(masks / cls) for cls in ("dent", "scratch")] == [1, 1], (layout, listed)
         assert list(h.labels) == [0, 0, 0, 1, 1, 1], layout
         assert h.classes[3:] == ["dent", "dent", "scratch"], layout
         assert [int(m.sum()) for m in h.masks[3:]] == [25, 25, 25], layout
