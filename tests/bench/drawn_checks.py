@@ -39,10 +39,12 @@ def measure_set(
     """knowngood trained as `train` does (`knowngood_runner.train`, its default working size, or `size` as `train
     --size` gives it) and the patch-memory peer at `PEER_SIZE` on the same images, and at knowngood's working size
     where that is another: image AUROC overall and per defect kind, knowngood's pixel AUROC, what the choice took,
-    training seconds, ms per test image."""
+    training seconds, ms per test image. The bundle is written to `bundle`, its stem followed by -`size` if given."""
+    if size:
+        bundle = bundle.with_name(f"{bundle.stem}-{size}{bundle.suffix}")
     run = knowngood_runner.train(train, bundle, minutes=minutes, size=size)
     scores, heats, ms = knowngood_runner.score_images(run.detector, test)
-    channels = train[0].shape[0]
+    channels = run.detector.cfg.channels  # the peer in knowngood's colour mode
     peer = PatchMemoryPeer().fit(to_model_input(train, size=PEER_SIZE, channels=channels))
     peer_scores, _ = peer.score(to_model_input(test, size=PEER_SIZE, channels=channels))
     shape, same_auroc = run.detector.cfg.shape, None

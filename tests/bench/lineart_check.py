@@ -174,9 +174,7 @@ def build(layout: str, seed: int = 0):
 
 def measure(layout: str, minutes: float, out_dir: Path, size: int | None = None) -> dict:
     train, test, labels, gt = build(layout)
-    return drawn_checks.measure_set(
-        train, test, labels, gt, out_dir / f"lineart-{layout}{f'-{size}' if size else ''}.kgm", minutes, KINDS, size
-    )
+    return drawn_checks.measure_set(train, test, labels, gt, out_dir / f"lineart-{layout}.kgm", minutes, KINDS, size)
 
 
 def _save(args) -> int | None:

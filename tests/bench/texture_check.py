@@ -114,9 +114,7 @@ def build(name: str, seed: int = 0):
 
 def measure(name: str, minutes: float, out_dir: Path, size: int | None = None) -> dict:
     train, test, labels, gt = build(name)
-    return drawn_checks.measure_set(
-        train, test, labels, gt, out_dir / f"texture-{name}{f'-{size}' if size else ''}.kgm", minutes, KINDS, size
-    )
+    return drawn_checks.measure_set(train, test, labels, gt, out_dir / f"texture-{name}.kgm", minutes, KINDS, size)
 
 
 def main(argv: list[str] | None = None) -> int:
